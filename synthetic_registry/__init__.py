@@ -1,0 +1,1 @@
+"""Seeded generator of synthetic ECG registry exports from a fictional health network."""
