@@ -1,9 +1,11 @@
 -- Registry schema: canonical tables every later stage reads.
--- Canonical units: ms, bpm, degrees; dates as DATE, acquisition as TIMESTAMP.
+-- Canonical units: ms, bpm, degrees (frontal axes in (-180, 180]); dates as DATE, acquisition
+-- as TIMESTAMP. Unique keys are enforced by the loader (sql/staging/classify.sql) and checked
+-- by tests, not by indexes, which would slow bulk loads of millions of rows.
 -- Keys are text so that source identifiers (or their keyed hashes) pass through unchanged.
 
-CREATE TABLE IF NOT EXISTS person (
-    person_key   VARCHAR PRIMARY KEY,
+CREATE TABLE IF NOT EXISTS person (  -- person_key unique: enforced by the loader
+    person_key   VARCHAR NOT NULL,
     birth_date   DATE NOT NULL,
     sex          VARCHAR NOT NULL CHECK (sex IN ('F', 'M', 'U')),
     site         VARCHAR,
@@ -14,7 +16,7 @@ CREATE TABLE IF NOT EXISTS person (
 
 -- One row per read of a tracing; a confirmed (overread) read and the machine read of the same
 -- tracing share ecg_key. The view ecg_read picks the one used downstream.
-CREATE TABLE IF NOT EXISTS ecg (
+CREATE TABLE IF NOT EXISTS ecg (  -- uniqueness of (ecg_key, read_kind) is enforced by the loader
     ecg_key          VARCHAR NOT NULL,
     person_key       VARCHAR NOT NULL,
     acquired_at      TIMESTAMP NOT NULL,
@@ -31,8 +33,7 @@ CREATE TABLE IF NOT EXISTS ecg (
     t_axis           DOUBLE,
     statements       VARCHAR[],
     statement_codes  VARCHAR[],
-    source_id        VARCHAR NOT NULL,
-    PRIMARY KEY (ecg_key, read_kind)
+    source_id        VARCHAR NOT NULL
 );
 
 CREATE TABLE IF NOT EXISTS wave_event (
@@ -98,6 +99,7 @@ CREATE TABLE IF NOT EXISTS load_log (
     rows_duplicate    BIGINT NOT NULL,
     rows_repaired     BIGINT NOT NULL,
     pseudonymized     BOOLEAN NOT NULL,
+    key_check         VARCHAR,  -- keyed hash of a fixed text: detects a changed key, reveals nothing
     loaded_at         TIMESTAMP NOT NULL,
     seconds           DOUBLE NOT NULL,
     software_version  VARCHAR NOT NULL,

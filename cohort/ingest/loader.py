@@ -1,0 +1,299 @@
+"""Load source files into the registry: one transaction per file, every record accounted for.
+
+For each file: read it (``sources``), stage and validate it (``sql/staging/<table>.sql``),
+classify records as load / duplicate / quarantine (``sql/staging/classify.sql``), write them and
+one ``load_log`` row whose counts reconcile (read = loaded + quarantined + duplicate). A file
+whose content (sha256) was already loaded into the same table loads nothing new.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import time
+import tomllib
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+from pathlib import Path
+
+from cohort import __version__
+from cohort.errors import InputFileError, MappingError
+from cohort.ingest import sources
+from cohort.ingest.mapping import INTERVAL_COLUMNS, LOAD_ORDER, Mapping, TableMapping, load_mapping
+from cohort.ingest.pseudonym import define_person_key_macro, key_check
+from cohort.registry import ensure_schema
+from cohort.sqlfiles import read_sql
+
+VALIDATION_RULES = Path(__file__).resolve().parent / "validation-v1.toml"
+_STAGE_SQL = {
+    "person": "staging/person.sql",
+    "ecg": "staging/ecg.sql",
+    "wave_event": "staging/wave_event.sql",
+    "procedure": "staging/coded_event.sql",
+    "diagnosis": "staging/coded_event.sql",
+}
+_CODE_MAPS = {"person": {"sex_codes": "sex"}, "ecg": {"read_kind_codes": "read_kind"}, "wave_event": {"kind_codes": "kind"}}
+
+
+@dataclass(frozen=True)
+class LoadResult:
+    """Outcome of loading one file (mirrors its ``load_log`` row)."""
+
+    path: Path
+    table: str
+    source_id: str
+    rows_read: int
+    rows_loaded: int
+    rows_quarantined: int
+    rows_duplicate: int
+    rows_repaired: int
+    seconds: float
+    skipped: bool = False  # the same content was loaded before
+
+    @property
+    def reconciles(self) -> bool:
+        return self.rows_read == self.rows_loaded + self.rows_quarantined + self.rows_duplicate
+
+
+def load_validation_rules(path: Path = VALIDATION_RULES) -> dict:
+    """The ingest validation rules (ranges, unit repair, date bounds) as a dict."""
+    with path.open("rb") as handle:
+        return tomllib.load(handle)
+
+
+def _param_row(rules: dict, table: TableMapping) -> dict[str, object]:
+    """One row of parameters the staging SQL reads from temp table ``ingest_param``."""
+    row: dict[str, object] = {}
+    for name, (lower, upper) in rules["range"].items():
+        row[f"{name}_lo"], row[f"{name}_hi"] = float(lower), float(upper)
+    units = table.options.get("units", {})
+    for column in INTERVAL_COLUMNS:
+        row[f"{column}_factor"] = 1000.0 if units.get(column, "ms") == "s" else 1.0
+    row["seconds_lower"] = float(rules["unit_repair"]["seconds_lower"])
+    row["seconds_upper"] = float(rules["unit_repair"]["seconds_upper"])
+    row["earliest_date"] = dt.date.fromisoformat(rules["dates"]["earliest"])
+    slack = int(rules["dates"]["latest_slack_days"])
+    row["latest_date"] = dt.date.today() + dt.timedelta(days=slack)
+    row["latest_slack_days"] = slack
+    return row
+
+
+def _prepare_session(con, rules: dict, table: TableMapping, key: bytes | None) -> None:
+    con.execute(read_sql("staging/macros.sql"))
+    define_person_key_macro(con, key)
+    params = _param_row(rules, table)
+    columns = ", ".join(f"${name} AS {name}" for name in params)
+    con.execute(f"CREATE OR REPLACE TEMP TABLE ingest_param AS SELECT {columns}", params)
+    con.execute("CREATE OR REPLACE TEMP TABLE code_map (field VARCHAR, source_value VARCHAR, code VARCHAR)")
+    rows = [
+        (field, value.lower(), code)
+        for option, field in _CODE_MAPS.get(table.table, {}).items()
+        for code, values in table.codes(option).items()
+        for value in values
+    ]
+    if rows:
+        con.executemany("INSERT INTO code_map VALUES (?, ?, ?)", rows)
+    con.execute("CREATE OR REPLACE TEMP TABLE column_map (canonical VARCHAR, source VARCHAR)")
+    con.executemany("INSERT INTO column_map VALUES (?, ?)", list(table.columns.items()))
+
+
+def _stage(con, table: TableMapping) -> None:
+    options = table.options
+    if table.table in ("procedure", "diagnosis"):
+        con.execute(f"CREATE OR REPLACE TEMP VIEW target_rows AS SELECT * FROM {table.table}")
+    params = {
+        "person": {"date_formats": options.get("date_formats")},
+        "ecg": {
+            "timestamp_formats": options.get("timestamp_formats"),
+            "statement_separator": options.get("statement_separator"),
+            "code_separator": options.get("code_separator"),
+        },
+        "wave_event": {},
+        "procedure": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
+        "diagnosis": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
+    }[table.table]
+    con.execute(read_sql(_STAGE_SQL[table.table]), params)
+    con.execute(read_sql("staging/classify.sql"))
+
+
+def _write_outcomes(con, table: str, source_id: str, rejected: list) -> tuple[int, int, int, int]:
+    """Insert loaded rows and the quarantine / repair / duplicate records; return the counts."""
+    target_columns = [row[0] for row in con.execute(f"DESCRIBE {table}").fetchall() if row[0] != "source_id"]
+    con.execute(
+        f"INSERT INTO {table} ({', '.join(target_columns)}, source_id) "
+        f"SELECT {', '.join(target_columns)}, $source_id FROM stage WHERE status = 'load'",
+        {"source_id": source_id},
+    )
+    params = {"source_id": source_id}
+    con.execute(read_sql("staging/record_quarantine.sql"), params)
+    if rejected:
+        con.executemany(
+            "INSERT INTO quarantine VALUES (?, ?, ?, ?, ?)",
+            [(source_id, record, column, raw, reason) for record, column, raw, reason in rejected],
+        )
+    con.execute(read_sql("staging/record_repairs.sql"), params)
+    con.execute(read_sql("staging/record_duplicates.sql"), params)
+    loaded, quarantined, duplicate, repaired = con.execute(
+        """
+        SELECT count(*) FILTER (status = 'load'), count(*) FILTER (status = 'quarantine'),
+               count(*) FILTER (status = 'duplicate'),
+               count(*) FILTER (status = 'load' AND len(repairs) > 0)
+        FROM stage
+        """
+    ).fetchone()
+    return loaded, quarantined + len(rejected), duplicate, repaired
+
+
+def _check_pseudonym_consistency(con, check: str | None, path: Path) -> None:
+    earlier = con.execute("SELECT DISTINCT key_check FROM load_log").fetchall()
+    for (previous,) in earlier:
+        if previous != check:
+            what = "with a different pseudonym key" if previous and check else (
+                "with pseudonymized ids" if previous else "with plain ids"
+            )
+            raise InputFileError(
+                f"{path}: the registry was loaded {what}; load every file the same way "
+                "(same key, or none) or the same person would get two keys"
+            )
+
+
+def load_file(
+    con,
+    path: str | Path,
+    *,
+    mapping: Mapping | None = None,
+    table: str | None = None,
+    key: bytes | None = None,
+    rules: dict | None = None,
+) -> LoadResult:
+    """Load one source file in one transaction; on any error the registry is unchanged."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputFileError(f"{path}: no such file")
+    mapping = mapping or load_mapping()
+    rules = rules or load_validation_rules()
+    kind = sources.source_kind(path)
+    if kind == "fhir":
+        from cohort.ingest.fhir import load_fhir_file
+
+        return load_fhir_file(con, path, mapping=mapping, key=key, rules=rules, load=_load_scanned)
+    table_mapping = mapping.tables[table] if table else mapping.table_for(path)
+    if table and table not in mapping.tables:
+        raise MappingError(f"mapping {mapping.mapping_id} has no [table.{table}] section")
+    sha256, empty_lines = sources.file_digest(path)
+
+    def scan() -> sources.ScanResult:
+        if kind == "csv":
+            return sources.scan_csv(con, path, mapping, table_mapping, sha256, empty_lines)
+        return sources.scan_parquet(con, path, table_mapping, sha256)
+
+    return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, sha256, kind)
+
+
+def _load_scanned(
+    con,
+    path: Path,
+    scan: Callable[[], sources.ScanResult],
+    table_mapping: TableMapping,
+    mapping: Mapping,
+    key: bytes | None,
+    rules: dict,
+    sha256: str,
+    kind: str,
+) -> LoadResult:
+    """Run scan -> stage -> classify -> write -> log inside one transaction."""
+    started = time.perf_counter()
+    table = table_mapping.table
+    source_id = f"{table}:{sha256[:16]}"
+    ensure_schema(con)
+    already = con.execute("SELECT rows_read FROM load_log WHERE source_id = ?", [source_id]).fetchone()
+    if already:  # same content loaded before: nothing new, nothing logged again
+        return LoadResult(path, table, source_id, 0, 0, 0, 0, 0, 0.0, skipped=True)
+    check = key_check(key)
+    _check_pseudonym_consistency(con, check, path)
+    con.execute("BEGIN TRANSACTION")
+    try:
+        _prepare_session(con, rules, table_mapping, key)
+        scanned = scan()
+        _stage(con, table_mapping)
+        staged = con.execute("SELECT count(*) FROM stage").fetchone()[0]
+        if staged == 0 and scanned.rejected:
+            reasons = sorted({reason for *_, reason in scanned.rejected})
+            raise InputFileError(
+                f"{path}: no line could be read ({len(scanned.rejected)} rejected: {'; '.join(reasons)}). "
+                "Check the delimiter and quote settings in the mapping and that the file is UTF-8 "
+                "(convert with e.g. iconv -f latin1 -t utf-8)."
+            )
+        loaded, quarantined, duplicate, repaired = _write_outcomes(con, table, source_id, scanned.rejected)
+        seconds = time.perf_counter() - started
+        rows_read = staged + len(scanned.rejected)
+        con.execute(
+            "INSERT INTO load_log VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp, ?, ?)",
+            [source_id, str(path), kind, table, sha256, mapping.sha256, rows_read, loaded, quarantined,
+             duplicate, repaired, key is not None, check, seconds, __version__],
+        )
+        _drop_temporaries(con)
+        con.execute("COMMIT")
+    except BaseException:
+        con.execute("ROLLBACK")
+        _drop_temporaries(con)
+        raise
+    return LoadResult(path, table, source_id, rows_read, loaded, quarantined, duplicate, repaired, seconds)
+
+
+def _drop_temporaries(con) -> None:
+    for name in ("stage", "stage_checked", "raw_source", "skipped_line", "dromos_rejects", "dromos_reject_scans"):
+        con.execute(f"DROP TABLE IF EXISTS {name}")
+    for name in ("src", "raw_numbered", "target_rows"):
+        con.execute(f"DROP VIEW IF EXISTS {name}")
+
+
+def order_for_loading(paths: Iterable[Path], mapping: Mapping, table: str | None = None) -> list[Path]:
+    """Files sorted so that a table's references are loaded first (persons before ECGs...)."""
+    def rank(path: Path) -> tuple[int, str]:
+        if sources.source_kind(path) == "fhir":
+            from cohort.ingest.fhir import fhir_rank
+
+            return fhir_rank(path), path.name
+        name = table or mapping.table_for(path).table
+        return LOAD_ORDER.index(name), path.name
+
+    return sorted(paths, key=rank)
+
+
+def expand_sources(sources_given: Iterable[str | Path]) -> list[Path]:
+    """Files named, with directories expanded to the data files they hold."""
+    found: list[Path] = []
+    for item in sources_given:
+        path = Path(item)
+        if path.is_dir():
+            for pattern in ("*.csv", "*.csv.gz", "*.parquet", "*.ndjson", "*.ndjson.gz"):
+                found.extend(sorted(path.glob(pattern)))
+        elif path.exists():
+            found.append(path)
+        else:
+            raise InputFileError(f"{path}: no such file or directory")
+    if not found:
+        raise InputFileError("no data files found in the sources given (.csv, .parquet, .ndjson)")
+    return found
+
+
+def ingest(
+    con,
+    sources_given: Iterable[str | Path],
+    *,
+    mapping: str | Path | Mapping | None = None,
+    table: str | None = None,
+    key: bytes | None = None,
+    progress: Callable[[LoadResult], None] | None = None,
+) -> list[LoadResult]:
+    """Load every file (directories expanded) in dependency order; return one result per file."""
+    mapping = mapping if isinstance(mapping, Mapping) else load_mapping(mapping)
+    rules = load_validation_rules()
+    paths = order_for_loading(expand_sources(sources_given), mapping, table)
+    results = []
+    for path in paths:
+        result = load_file(con, path, mapping=mapping, table=table, key=key, rules=rules)
+        results.append(result)
+        if progress:
+            progress(result)
+    return results

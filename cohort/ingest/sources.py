@@ -1,0 +1,195 @@
+"""Expose a source file to the staging SQL as the view ``src`` (record + canonical text columns).
+
+CSV is read by DuckDB in one pass with rejected lines captured (wrong field count, invalid
+UTF-8); Parquet is read as is; FHIR NDJSON is flattened in ``cohort.ingest.fhir``. Every
+source yields the same view, so one set of staging statements validates them all.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from cohort.errors import InputFileError, MappingError
+from cohort.ingest.mapping import CANONICAL_COLUMNS, Mapping, TableMapping
+
+_CHUNK = 8 * 1024 * 1024
+
+
+@dataclass
+class ScanResult:
+    """What reading a source produced besides the ``src`` view."""
+
+    sha256: str
+    kind: str  # csv | parquet | fhir
+    rejected: list[tuple[int, str | None, str, str]] = field(default_factory=list)
+    """(record, field, raw line, reason) of lines the reader could not split into fields."""
+
+
+def file_digest(path: Path) -> tuple[str, list[int]]:
+    """SHA-256 of the file and the 1-based numbers of its empty lines (one pass)."""
+    digest = hashlib.sha256()
+    empty_lines: list[int] = []
+    line_no = 1
+    previous_end = b"\n"  # a file starting with a newline has an empty first line
+    with path.open("rb") as handle:
+        while chunk := handle.read(_CHUNK):
+            digest.update(chunk)
+            data = previous_end + chunk
+            start = 0
+            while True:
+                hit = data.find(b"\n\n", start)
+                crlf = data.find(b"\n\r\n", start)
+                hits = [h for h in (hit, crlf) if h >= 0]
+                if not hits:
+                    break
+                pos = min(hits)
+                empty_lines.append(line_no + data.count(b"\n", 0, pos + 1) - 1)
+                start = pos + 1
+            line_no += chunk.count(b"\n")
+            previous_end = chunk[-1:]
+    return digest.hexdigest(), sorted(set(empty_lines))
+
+
+def source_kind(path: Path) -> str:
+    """csv, parquet or fhir, from the file name."""
+    name = path.name.lower()
+    if name.endswith((".ndjson", ".ndjson.gz", ".jsonl")):
+        return "fhir"
+    if name.endswith(".parquet"):
+        return "parquet"
+    if name.endswith((".csv", ".csv.gz", ".txt", ".tsv")):
+        return "csv"
+    raise InputFileError(f"{path}: unknown file type; expected .csv, .parquet or .ndjson")
+
+
+def _csv_header(path: Path, options: dict) -> list[str]:
+    with path.open("rb") as handle:
+        first = handle.readline().decode("utf-8", errors="replace").lstrip("\ufeff")
+    if not first.strip():
+        raise InputFileError(f"{path}: the first line is empty; a header line is required")
+    reader = csv.reader(io.StringIO(first), delimiter=options["delimiter"], quotechar=options["quote"])
+    return [name.strip() for name in next(reader)]
+
+
+def _check_mapped_columns(path: Path, header: list[str], table: TableMapping) -> None:
+    missing = [source for source in table.columns.values() if source not in header]
+    if missing:
+        raise MappingError(
+            f"{path}: column(s) {', '.join(missing)} named in the mapping for table "
+            f"'{table.table}' are not in the file (its columns: {', '.join(header)}). "
+            "Fix the [table.*.columns] section of the mapping or the file's header."
+        )
+
+
+def _create_src_view(con, relation: str, table: TableMapping, list_columns: set[str]) -> None:
+    """View ``src``: record and every canonical column as text (NULL when not mapped)."""
+    parts = ["record"]
+    separator = table.options.get("statement_separator", " | ")
+    for canonical in CANONICAL_COLUMNS[table.table]:
+        source = table.columns.get(canonical)
+        if source is None:
+            parts.append(f"CAST(NULL AS VARCHAR) AS {canonical}")
+        elif source in list_columns:
+            sep = separator if canonical == "statements" else table.options.get("code_separator", ";")
+            parts.append(f"array_to_string(\"{source}\", '{sep}') AS {canonical}")
+        else:
+            parts.append(f'CAST("{source}" AS VARCHAR) AS {canonical}')
+    con.execute(f"CREATE OR REPLACE TEMP VIEW src AS SELECT {', '.join(parts)} FROM {relation}")
+
+
+def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping, sha256: str, empty_lines: list[int]) -> ScanResult:
+    """Read a CSV into temp table ``raw_source`` and define ``src``; collect rejected lines."""
+    options = mapping.csv
+    header = _csv_header(path, options)
+    _check_mapped_columns(path, header, table)
+    header_lines = 1 if options.get("header", True) else 0
+    columns = ", ".join(f"'{name.replace(chr(39), chr(39) * 2)}': 'VARCHAR'" for name in header)
+    con.execute("DROP TABLE IF EXISTS dromos_rejects; DROP TABLE IF EXISTS dromos_reject_scans")
+    con.execute(
+        f"""
+        CREATE OR REPLACE TEMP TABLE raw_source AS
+        SELECT * FROM read_csv(
+            $path, header = {str(bool(header_lines)).lower()}, auto_detect = false,
+            columns = {{{columns}}}, delim = $delim, quote = $quote, escape = $escape,
+            null_padding = false, store_rejects = true,
+            rejects_table = 'dromos_rejects', rejects_scan = 'dromos_reject_scans',
+            max_line_size = 10000000
+        )
+        """,
+        {"path": str(path), "delim": options["delimiter"], "quote": options["quote"], "escape": options["escape"]},
+    )
+    rejects = con.execute(
+        """
+        SELECT line, any_value(column_name), any_value(csv_line),
+               string_agg(DISTINCT error_type, ', ' ORDER BY error_type)
+        FROM dromos_rejects GROUP BY line ORDER BY line
+        """
+    ).fetchall()
+    skipped = sorted({line for line, *_ in rejects} | set(empty_lines) | set(range(1, header_lines + 1)))
+    con.execute("CREATE OR REPLACE TEMP TABLE skipped_line (line BIGINT)")
+    if skipped:
+        con.executemany("INSERT INTO skipped_line VALUES (?)", [(line,) for line in skipped])
+    # The k-th parsed row sits on the k-th physical line that was neither header, empty nor
+    # rejected (one record per line; DuckDB keeps file order with insertion order preserved).
+    con.execute(
+        f"""
+        CREATE OR REPLACE TEMP VIEW raw_numbered AS
+        WITH parsed AS (
+            -- rowids of rows not yet committed start at a large offset: count from the first
+            SELECT rowid - (SELECT min(rowid) FROM raw_source) + 1 AS k, * FROM raw_source
+        ),
+        lines AS (
+            SELECT line, row_number() OVER (ORDER BY line) AS k
+            FROM range(1, (SELECT count(*) FROM raw_source) + {len(skipped)} + 1) AS r(line)
+            WHERE line NOT IN (SELECT line FROM skipped_line)
+        )
+        SELECT lines.line - {header_lines} AS record, parsed.* EXCLUDE (k)
+        FROM parsed JOIN lines USING (k)
+        """
+    )
+    _create_src_view(con, "raw_numbered", table, set())
+    rejected = [
+        (line - header_lines, column if "ENCODING" in kinds else None, raw, _reject_reason(kinds))
+        for line, column, raw, kinds in rejects
+    ]
+    return ScanResult(sha256=sha256, kind="csv", rejected=rejected)
+
+
+def _reject_reason(error_types: str) -> str:
+    if "INVALID ENCODING" in error_types or "INVALID UNICODE" in error_types:
+        return "invalid UTF-8 bytes in the line"
+    return f"malformed line ({error_types.lower()})"
+
+
+def scan_parquet(con, path: Path, table: TableMapping, sha256: str) -> ScanResult:
+    """Read a Parquet file into ``raw_source`` (record = row position) and define ``src``."""
+    con.execute(
+        "CREATE OR REPLACE TEMP TABLE raw_source AS SELECT * EXCLUDE (file_row_number), "
+        "file_row_number + 1 AS record FROM read_parquet($path, file_row_number = true)",
+        {"path": str(path)},
+    )
+    described = con.execute("DESCRIBE raw_source").fetchall()
+    header = [row[0] for row in described]
+    _check_mapped_columns(path, header, table)
+    list_columns = {row[0] for row in described if str(row[1]).endswith("[]")}
+    _create_src_view(con, "raw_source", table, list_columns)
+    return ScanResult(sha256=sha256, kind="parquet")
+
+
+def scan_arrow(con, arrow_table, table: TableMapping, sha256: str, kind: str) -> ScanResult:
+    """Expose an Arrow table already in canonical text columns (with ``record``) as ``src``."""
+    con.register("dromos_arrow_source", arrow_table)
+    con.execute("CREATE OR REPLACE TEMP TABLE raw_source AS SELECT * FROM dromos_arrow_source")
+    con.unregister("dromos_arrow_source")
+    identity = TableMapping(
+        table=table.table,
+        files=table.files,
+        columns={c: c for c in CANONICAL_COLUMNS[table.table] if c in arrow_table.column_names},
+        options=table.options,
+    )
+    _create_src_view(con, "raw_source", identity, set())
+    return ScanResult(sha256=sha256, kind=kind)

@@ -1,0 +1,33 @@
+-- Helper macros for the staging statements (session-local, never stored in the registry).
+CREATE OR REPLACE TEMP MACRO dromos_text(x) AS nullif(trim(CAST(x AS VARCHAR)), '');
+CREATE OR REPLACE TEMP MACRO dromos_number(x) AS TRY_CAST(dromos_text(x) AS DOUBLE);
+-- A problem record when `failed` is true; NULL otherwise (also when `failed` is NULL).
+CREATE OR REPLACE TEMP MACRO dromos_problem(field_name, raw, failed, reason) AS
+    CASE WHEN failed THEN {'field': field_name, 'raw_value': CAST(raw AS VARCHAR), 'reason': reason} END;
+-- Problems of a numeric field: unparseable, or outside its inclusive [lo, hi] range.
+CREATE OR REPLACE TEMP MACRO dromos_number_problem(field_name, raw, value, lo, hi) AS
+    CASE
+        WHEN dromos_text(raw) IS NOT NULL AND value IS NULL
+            THEN {'field': field_name, 'raw_value': CAST(raw AS VARCHAR), 'reason': 'not a number'}
+        WHEN value < lo OR value > hi
+            THEN {'field': field_name, 'raw_value': CAST(raw AS VARCHAR),
+                  'reason': printf('outside plausible range [%g, %g]', lo, hi)}
+    END;
+-- Interval in ms from a raw value declared in ms (factor 1) or s (factor 1000); a value
+-- declared in ms that can only be seconds (see validation rules) is converted.
+CREATE OR REPLACE TEMP MACRO dromos_interval_ms(raw, factor, s_lo, s_hi) AS
+    CASE
+        WHEN factor = 1 AND dromos_number(raw) >= s_lo AND dromos_number(raw) < s_hi
+            THEN dromos_number(raw) * 1000
+        ELSE dromos_number(raw) * factor
+    END;
+CREATE OR REPLACE TEMP MACRO dromos_repair(field_name, raw, factor, s_lo, s_hi, rule) AS
+    CASE
+        WHEN factor = 1 AND dromos_number(raw) >= s_lo AND dromos_number(raw) < s_hi
+            THEN {'field': field_name, 'raw_value': CAST(raw AS VARCHAR),
+                  'repaired_value': CAST(dromos_number(raw) * 1000 AS VARCHAR), 'rule': rule}
+    END;
+-- Frontal-plane axis in (-180, 180]: machines report -90..270 or -180..180.
+CREATE OR REPLACE TEMP MACRO dromos_axis(value) AS CASE WHEN value > 180 THEN value - 360 ELSE value END;
+-- Date from text with any of the given formats (a list known when the statement is bound).
+CREATE OR REPLACE TEMP MACRO dromos_date(x, formats) AS CAST(try_strptime(dromos_text(x), formats) AS DATE);

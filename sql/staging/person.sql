@@ -1,0 +1,59 @@
+-- Stage a person export.
+-- Grain: one row per source record (record = 1-based data row number of the source file).
+-- Input: view src (record + canonical columns as text), temp tables code_map, ingest_param;
+-- parameter $date_formats. Output: temp table stage_checked (typed columns, problems, registry match), classified next
+-- by classify.sql.
+CREATE OR REPLACE TEMP TABLE stage_checked AS
+WITH typed AS (
+    SELECT
+        s.record,
+        dromos_text(s.person_key) AS person_key_raw,
+        dromos_person_key(dromos_text(s.person_key)) AS person_key,
+        s.birth_date AS birth_date_raw,
+        dromos_date(s.birth_date, $date_formats) AS birth_date,
+        s.sex AS sex_raw,
+        coalesce(sex_code.code, CASE WHEN dromos_text(s.sex) IS NULL THEN 'U' END) AS sex,
+        dromos_text(s.site) AS site,
+        s.death_date AS death_date_raw,
+        dromos_date(s.death_date, $date_formats) AS death_date,
+        s.followup_end AS followup_end_raw,
+        dromos_date(s.followup_end, $date_formats) AS followup_end
+    FROM src AS s
+    LEFT JOIN code_map AS sex_code
+        ON sex_code.field = 'sex' AND sex_code.source_value = lower(dromos_text(s.sex))
+),
+checked AS (
+    SELECT
+        t.*,
+        list_filter([
+            dromos_problem('person_key', t.person_key_raw, t.person_key IS NULL, 'missing required value'),
+            dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NULL, 'missing required value'),
+            dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NOT NULL AND t.birth_date IS NULL, 'unparseable date'),
+            dromos_problem('birth_date', t.birth_date_raw, t.birth_date < p.earliest_date OR t.birth_date > p.latest_date, 'date out of range'),
+            dromos_problem('sex', t.sex_raw, t.sex IS NULL, 'unknown sex code'),
+            dromos_problem('death_date', t.death_date_raw, dromos_text(t.death_date_raw) IS NOT NULL AND t.death_date IS NULL, 'unparseable date'),
+            dromos_problem('death_date', t.death_date_raw, t.death_date < t.birth_date, 'death before birth'),
+            dromos_problem('death_date', t.death_date_raw, t.death_date > p.latest_date, 'date out of range'),
+            dromos_problem('followup_end', t.followup_end_raw, dromos_text(t.followup_end_raw) IS NULL, 'missing required value'),
+            dromos_problem('followup_end', t.followup_end_raw, dromos_text(t.followup_end_raw) IS NOT NULL AND t.followup_end IS NULL, 'unparseable date'),
+            dromos_problem('followup_end', t.followup_end_raw, t.followup_end < t.birth_date, 'end of follow-up before birth'),
+            dromos_problem('death_date', t.death_date_raw, t.death_date > t.followup_end, 'death after end of follow-up')
+        ], lambda x: x IS NOT NULL) AS problems,
+        hash(t.person_key, t.birth_date, t.sex, t.site, t.death_date, t.followup_end) AS content_hash
+    FROM typed AS t
+    CROSS JOIN ingest_param AS p
+),
+registry AS (
+    SELECT person_key, source_id AS registry_source,
+           hash(person_key, birth_date, sex, site, death_date, followup_end) AS registry_hash
+    FROM person
+)
+SELECT
+    c.*,
+    c.person_key AS dedup_key,
+    c.person_key_raw AS key_raw,
+    g.registry_hash,
+    g.registry_source,
+    CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
+FROM checked AS c
+LEFT JOIN registry AS g ON g.person_key = c.person_key;
