@@ -15,6 +15,8 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
 
+import duckdb
+
 from cohort import __version__
 from cohort.errors import InputFileError, MappingError
 from cohort.ingest import sources
@@ -213,7 +215,12 @@ def _load_scanned(
     con.execute("BEGIN TRANSACTION")
     try:
         _prepare_session(con, rules, table_mapping, key)
-        scanned = scan()
+        try:
+            scanned = scan()
+        except duckdb.Error as exc:
+            raise InputFileError(
+                f"{path}: cannot be read as {kind} with mapping {mapping.mapping_id}: {exc}"
+            ) from exc
         _stage(con, table_mapping)
         staged = con.execute("SELECT count(*) FROM stage").fetchone()[0]
         if staged == 0 and scanned.rejected:
