@@ -98,7 +98,7 @@ def _prepare_session(con, rules: dict, table: TableMapping, key: bytes | None) -
     con.executemany("INSERT INTO column_map VALUES (?, ?)", list(table.columns.items()))
 
 
-def _stage(con, table: TableMapping) -> None:
+def _stage(con, table: TableMapping, scanned: sources.ScanResult) -> None:
     options = table.options
     if table.table in ("procedure", "diagnosis"):
         con.execute(f"CREATE OR REPLACE TEMP VIEW target_rows AS SELECT * FROM {table.table}")
@@ -114,7 +114,8 @@ def _stage(con, table: TableMapping) -> None:
         "diagnosis": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
     }[table.table]
     con.execute(read_sql(_STAGE_SQL[table.table]), params)
-    con.execute(read_sql("staging/classify.sql"))
+    scanned.finish(con)
+    con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
 
 
 def _write_outcomes(con, table: str, source_id: str, rejected: list) -> tuple[int, int, int, int]:
@@ -122,7 +123,8 @@ def _write_outcomes(con, table: str, source_id: str, rejected: list) -> tuple[in
     target_columns = [row[0] for row in con.execute(f"DESCRIBE {table}").fetchall() if row[0] != "source_id"]
     con.execute(
         f"INSERT INTO {table} ({', '.join(target_columns)}, source_id) "
-        f"SELECT {', '.join(target_columns)}, $source_id FROM stage WHERE status = 'load'",
+        f"SELECT {', '.join(target_columns)}, $source_id FROM stage_checked AS s "
+        "WHERE NOT EXISTS (SELECT 1 FROM stage_outcome AS o WHERE o.row_k = s.row_k AND o.status <> 'load')",
         {"source_id": source_id},
     )
     params = {"source_id": source_id}
@@ -134,15 +136,15 @@ def _write_outcomes(con, table: str, source_id: str, rejected: list) -> tuple[in
         )
     con.execute(read_sql("staging/record_repairs.sql"), params)
     con.execute(read_sql("staging/record_duplicates.sql"), params)
-    loaded, quarantined, duplicate, repaired = con.execute(
+    staged, quarantined, duplicate, repaired = con.execute(
         """
-        SELECT count(*) FILTER (status = 'load'), count(*) FILTER (status = 'quarantine'),
+        SELECT (SELECT count(*) FROM stage_checked), count(*) FILTER (status = 'quarantine'),
                count(*) FILTER (status = 'duplicate'),
                count(*) FILTER (status = 'load' AND len(repairs) > 0)
-        FROM stage
+        FROM stage_outcome
         """
     ).fetchone()
-    return loaded, quarantined + len(rejected), duplicate, repaired
+    return staged - quarantined - duplicate, quarantined + len(rejected), duplicate, repaired
 
 
 def _check_pseudonym_consistency(con, check: str | None, path: Path) -> None:
@@ -215,14 +217,15 @@ def _load_scanned(
     con.execute("BEGIN TRANSACTION")
     try:
         _prepare_session(con, rules, table_mapping, key)
-        try:
+        try:  # the file itself is read while staging
             scanned = scan()
-        except duckdb.Error as exc:
+            _stage(con, table_mapping, scanned)
+        except (duckdb.InvalidInputException, duckdb.IOException, duckdb.ConversionException) as exc:
             raise InputFileError(
-                f"{path}: cannot be read as {kind} with mapping {mapping.mapping_id}: {exc}"
+                f"{path}: cannot be read as {kind} with mapping {mapping.mapping_id}: {exc}. "
+                "Check the file's delimiter, quoting and encoding against the mapping."
             ) from exc
-        _stage(con, table_mapping)
-        staged = con.execute("SELECT count(*) FROM stage").fetchone()[0]
+        staged = con.execute("SELECT count(*) FROM stage_checked").fetchone()[0]
         if staged == 0 and scanned.rejected:
             reasons = sorted({reason for *_, reason in scanned.rejected})
             raise InputFileError(
@@ -247,11 +250,20 @@ def _load_scanned(
     return LoadResult(path, table, source_id, rows_read, loaded, quarantined, duplicate, repaired, seconds)
 
 
+_TEMPORARIES = (
+    "stage_outcome", "stage_checked", "raw_arrow", "skip_offset", "dromos_rejects",
+    "dromos_reject_scans", "src", "raw_numbered", "raw_source", "target_rows",
+)
+
+
 def _drop_temporaries(con) -> None:
-    for name in ("stage", "stage_checked", "raw_source", "skipped_line", "dromos_rejects", "dromos_reject_scans"):
-        con.execute(f"DROP TABLE IF EXISTS {name}")
-    for name in ("src", "raw_numbered", "target_rows"):
-        con.execute(f"DROP VIEW IF EXISTS {name}")
+    present = con.execute(
+        "SELECT table_name, 'TABLE' FROM duckdb_tables() WHERE temporary "
+        "UNION ALL SELECT view_name, 'VIEW' FROM duckdb_views() WHERE temporary"
+    ).fetchall()
+    for name, kind in present:
+        if name in _TEMPORARIES:
+            con.execute(f"DROP {kind} IF EXISTS {name}")
 
 
 def order_for_loading(paths: Iterable[Path], mapping: Mapping, table: str | None = None) -> list[Path]:

@@ -25,8 +25,37 @@ class ScanResult:
 
     sha256: str
     kind: str  # csv | parquet | fhir
+    header_lines: int = 0
+    empty_lines: list[int] = field(default_factory=list)
     rejected: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     """(record, field, raw line, reason) of lines the reader could not split into fields."""
+
+    def finish(self, con) -> None:
+        """After staging read the file: collect rejected lines, build table ``skip_offset``.
+
+        ``skip_offset(k_start, lines_before)``: parsed rows from the k_start-th on sit
+        ``lines_before`` lines further down the file than their position (header, empty and
+        rejected lines are not parsed; one record per line).
+        """
+        rejects = []
+        if self.kind == "csv":
+            rejects = con.execute(
+                """
+                SELECT line, any_value(column_name), any_value(csv_line),
+                       string_agg(DISTINCT error_type, ', ' ORDER BY error_type)
+                FROM dromos_rejects GROUP BY line ORDER BY line
+                """
+            ).fetchall()
+        self.rejected = [
+            (line - self.header_lines, column if "ENCODING" in kinds else None, raw, _reject_reason(kinds))
+            for line, column, raw, kinds in rejects
+        ]
+        skipped = sorted({line for line, *_ in rejects} | set(self.empty_lines) | set(range(1, self.header_lines + 1)))
+        # consecutive skipped lines share a k_start: the last (largest count) applies
+        offsets = list({line - j + 1: j for j, line in enumerate(skipped, start=1)}.items())
+        con.execute("CREATE OR REPLACE TEMP TABLE skip_offset (k_start BIGINT, lines_before BIGINT)")
+        if offsets:
+            con.executemany("INSERT INTO skip_offset VALUES (?, ?)", offsets)
 
 
 def file_digest(path: Path) -> tuple[str, list[int]]:
@@ -86,8 +115,8 @@ def _check_mapped_columns(path: Path, header: list[str], table: TableMapping) ->
 
 
 def _create_src_view(con, relation: str, table: TableMapping, list_columns: set[str]) -> None:
-    """View ``src``: record and every canonical column as text (NULL when not mapped)."""
-    parts = ["record"]
+    """View ``src``: row_k and every canonical column as text (NULL when not mapped)."""
+    parts = ["row_k"]
     separator = table.options.get("statement_separator", " | ")
     for canonical in CANONICAL_COLUMNS[table.table]:
         source = table.columns.get(canonical)
@@ -102,61 +131,31 @@ def _create_src_view(con, relation: str, table: TableMapping, list_columns: set[
 
 
 def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping, sha256: str, empty_lines: list[int]) -> ScanResult:
-    """Read a CSV into temp table ``raw_source`` and define ``src``; collect rejected lines."""
+    """Define ``src`` over DuckDB's ``read_csv`` of the file (read once, when staging runs)."""
     options = mapping.csv
     header = _csv_header(path, options)
     _check_mapped_columns(path, header, table)
     header_lines = 1 if options.get("header", True) else 0
     columns = ", ".join(f"'{name.replace(chr(39), chr(39) * 2)}': 'VARCHAR'" for name in header)
     con.execute("DROP TABLE IF EXISTS dromos_rejects; DROP TABLE IF EXISTS dromos_reject_scans")
-    con.execute(
-        f"""
-        CREATE OR REPLACE TEMP TABLE raw_source AS
-        SELECT * FROM read_csv(
-            $path, header = {str(bool(header_lines)).lower()}, auto_detect = false,
-            columns = {{{columns}}}, delim = $delim, quote = $quote, escape = $escape,
-            null_padding = false, store_rejects = true,
-            rejects_table = 'dromos_rejects', rejects_scan = 'dromos_reject_scans',
-            max_line_size = 10000000
-        )
-        """,
-        {"path": str(path), "delim": options["delimiter"], "quote": options["quote"], "escape": options["escape"]},
-    )
-    rejects = con.execute(
-        """
-        SELECT line, any_value(column_name), any_value(csv_line),
-               string_agg(DISTINCT error_type, ', ' ORDER BY error_type)
-        FROM dromos_rejects GROUP BY line ORDER BY line
-        """
-    ).fetchall()
-    skipped = sorted({line for line, *_ in rejects} | set(empty_lines) | set(range(1, header_lines + 1)))
-    con.execute("CREATE OR REPLACE TEMP TABLE skipped_line (line BIGINT)")
-    if skipped:
-        con.executemany("INSERT INTO skipped_line VALUES (?)", [(line,) for line in skipped])
-    # The k-th parsed row sits on the k-th physical line that was neither header, empty nor
-    # rejected (one record per line; DuckDB keeps file order with insertion order preserved).
+    quoted = {k: "'" + str(options[k]).replace("'", "''") + "'" for k in ("delimiter", "quote", "escape")}
+    path_text = str(path).replace("'", "''")
+    # row_number() OVER () follows file order (insertion order is preserved; checked in tests).
     con.execute(
         f"""
         CREATE OR REPLACE TEMP VIEW raw_numbered AS
-        WITH parsed AS (
-            -- rowids of rows not yet committed start at a large offset: count from the first
-            SELECT rowid - (SELECT min(rowid) FROM raw_source) + 1 AS k, * FROM raw_source
-        ),
-        lines AS (
-            SELECT line, row_number() OVER (ORDER BY line) AS k
-            FROM range(1, (SELECT count(*) FROM raw_source) + {len(skipped)} + 1) AS r(line)
-            WHERE line NOT IN (SELECT line FROM skipped_line)
+        SELECT row_number() OVER () AS row_k, *
+        FROM read_csv(
+            '{path_text}', header = {str(bool(header_lines)).lower()}, auto_detect = false,
+            columns = {{{columns}}}, delim = {quoted['delimiter']}, quote = {quoted['quote']},
+            escape = {quoted['escape']}, null_padding = false, store_rejects = true,
+            rejects_table = 'dromos_rejects', rejects_scan = 'dromos_reject_scans',
+            max_line_size = 10000000
         )
-        SELECT lines.line - {header_lines} AS record, parsed.* EXCLUDE (k)
-        FROM parsed JOIN lines USING (k)
         """
     )
     _create_src_view(con, "raw_numbered", table, set())
-    rejected = [
-        (line - header_lines, column if "ENCODING" in kinds else None, raw, _reject_reason(kinds))
-        for line, column, raw, kinds in rejects
-    ]
-    return ScanResult(sha256=sha256, kind="csv", rejected=rejected)
+    return ScanResult(sha256=sha256, kind="csv", header_lines=header_lines, empty_lines=empty_lines)
 
 
 def _reject_reason(error_types: str) -> str:
@@ -166,11 +165,11 @@ def _reject_reason(error_types: str) -> str:
 
 
 def scan_parquet(con, path: Path, table: TableMapping, sha256: str) -> ScanResult:
-    """Read a Parquet file into ``raw_source`` (record = row position) and define ``src``."""
+    """Define ``src`` over the Parquet file (record = row position in the file)."""
+    path_text = str(path).replace("'", "''")
     con.execute(
-        "CREATE OR REPLACE TEMP TABLE raw_source AS SELECT * EXCLUDE (file_row_number), "
-        "file_row_number + 1 AS record FROM read_parquet($path, file_row_number = true)",
-        {"path": str(path)},
+        "CREATE OR REPLACE TEMP VIEW raw_source AS SELECT * EXCLUDE (file_row_number), "
+        f"file_row_number + 1 AS row_k FROM read_parquet('{path_text}', file_row_number = true)"
     )
     described = con.execute("DESCRIBE raw_source").fetchall()
     header = [row[0] for row in described]
@@ -181,9 +180,9 @@ def scan_parquet(con, path: Path, table: TableMapping, sha256: str) -> ScanResul
 
 
 def scan_arrow(con, arrow_table, table: TableMapping, sha256: str, kind: str) -> ScanResult:
-    """Expose an Arrow table already in canonical text columns (with ``record``) as ``src``."""
+    """Expose an Arrow table of canonical text columns (with ``row_k``) as ``src``."""
     con.register("dromos_arrow_source", arrow_table)
-    con.execute("CREATE OR REPLACE TEMP TABLE raw_source AS SELECT * FROM dromos_arrow_source")
+    con.execute("CREATE OR REPLACE TEMP TABLE raw_arrow AS SELECT * FROM dromos_arrow_source")
     con.unregister("dromos_arrow_source")
     identity = TableMapping(
         table=table.table,
@@ -191,5 +190,5 @@ def scan_arrow(con, arrow_table, table: TableMapping, sha256: str, kind: str) ->
         columns={c: c for c in CANONICAL_COLUMNS[table.table] if c in arrow_table.column_names},
         options=table.options,
     )
-    _create_src_view(con, "raw_source", identity, set())
+    _create_src_view(con, "raw_arrow", identity, set())
     return ScanResult(sha256=sha256, kind=kind)

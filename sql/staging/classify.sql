@@ -1,19 +1,35 @@
--- Classify staged records: load, duplicate or quarantine.
--- Grain: one row per source record. Input: temp table stage_checked with columns record,
--- dedup_key, key_raw, problems, repairs, content_hash, registry_hash, registry_source and the
--- canonical columns. A record with problems is quarantined. A clean record whose key is already
--- in the registry, or in an earlier clean record of the same file, is a duplicate when its
+-- Classify staged records: load, duplicate or quarantine, and number the exceptions.
+-- Grain: one row per staged record that is NOT simply loaded (problems, a key already in the
+-- registry, a key repeated in the file) or that was repaired; every other record loads.
+-- Input: stage_checked (row_k, dedup_key, key_raw, problems, repairs, content_hash,
+-- registry_hash, registry_source, ...) and skip_offset (k_start, lines_before): the source
+-- line of the k-th parsed row is k + lines_before of the last k_start <= k (header, empty and
+-- rejected lines are not parsed). A record with problems is quarantined. A clean record whose
+-- key is in the registry, or in an earlier clean record of the file, is a duplicate when its
 -- content is identical and is quarantined as a conflict otherwise (nothing is overwritten).
-CREATE OR REPLACE TEMP TABLE stage AS
-WITH ranked AS (
+CREATE OR REPLACE TEMP TABLE stage_outcome AS
+WITH clean_repeats AS (
+    SELECT hash(dedup_key) AS key_hash
+    FROM stage_checked
+    WHERE len(problems) = 0
+    GROUP BY 1
+    HAVING count(*) > 1
+),
+candidates AS (
+    SELECT c.row_k, c.dedup_key, c.key_raw, c.problems, c.repairs, c.content_hash,
+           c.registry_hash, c.registry_source, len(c.problems) = 0 AS clean
+    FROM stage_checked AS c
+    WHERE len(c.problems) > 0
+       OR c.registry_hash IS NOT NULL
+       OR len(c.repairs) > 0
+       OR (len(c.problems) = 0 AND hash(c.dedup_key) IN (SELECT key_hash FROM clean_repeats))
+),
+ranked AS (
     SELECT
         c.*,
-        len(c.problems) = 0 AS clean,
-        row_number() OVER (PARTITION BY c.dedup_key, len(c.problems) = 0 ORDER BY c.record) AS key_rank,
-        first_value(c.content_hash) OVER (
-            PARTITION BY c.dedup_key, len(c.problems) = 0 ORDER BY c.record
-        ) AS first_hash
-    FROM stage_checked AS c
+        row_number() OVER (PARTITION BY c.dedup_key, c.clean ORDER BY c.row_k) AS key_rank,
+        first_value(c.content_hash) OVER (PARTITION BY c.dedup_key, c.clean ORDER BY c.row_k) AS first_hash
+    FROM candidates AS c
 ),
 judged AS (
     SELECT
@@ -34,7 +50,9 @@ judged AS (
     FROM ranked AS r
 )
 SELECT
-    j.* EXCLUDE (problems, clean, key_rank, first_hash, key_finding, conflict),
+    j.row_k,
+    j.row_k + coalesce(o.lines_before, 0) - $header_lines AS record,
+    j.dedup_key,
     CASE
         WHEN NOT j.clean OR j.conflict THEN 'quarantine'
         WHEN j.key_finding IS NOT NULL THEN 'duplicate'
@@ -44,5 +62,7 @@ SELECT
     CASE
         WHEN j.conflict THEN [{'field': 'key', 'raw_value': j.key_raw, 'reason': j.key_finding}]
         ELSE j.problems
-    END AS problems
-FROM judged AS j;
+    END AS problems,
+    j.repairs
+FROM judged AS j
+ASOF LEFT JOIN skip_offset AS o ON j.row_k >= o.k_start;

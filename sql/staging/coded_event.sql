@@ -6,7 +6,7 @@
 CREATE OR REPLACE TEMP TABLE stage_checked AS
 WITH typed AS (
     SELECT
-        s.record,
+        s.row_k,
         dromos_text(s.person_key) AS person_key_raw,
         dromos_person_key(dromos_text(s.person_key)) AS person_key,
         s.date AS date_raw,

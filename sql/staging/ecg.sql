@@ -2,11 +2,12 @@
 -- Grain: one row per source record. Key: (ecg_key, read_kind).
 -- Input: view src, temp tables code_map and ingest_param (ranges, unit factors, date bounds);
 -- parameters $timestamp_formats, $statement_separator, $code_separator.
--- Output: temp table stage_checked, classified next by classify.sql.
+-- Output: temp table stage_checked (typed columns, problems, repairs, registry match; raw text
+-- is kept only inside problems), classified next by classify.sql.
 CREATE OR REPLACE TEMP TABLE stage_checked AS
 WITH typed AS (
     SELECT
-        s.record,
+        s.row_k,
         dromos_text(s.ecg_key) AS ecg_key,
         dromos_text(s.person_key) AS person_key_raw,
         dromos_person_key(dromos_text(s.person_key)) AS person_key,
@@ -44,7 +45,8 @@ with_person AS (
 ),
 checked AS (
     SELECT
-        w.* EXCLUDE (repair_candidates, person_known, birth_date, death_date, p_axis_value, qrs_axis_value, t_axis_value),
+        w.row_k, w.ecg_key, w.person_key, w.acquired_at, w.site, w.read_kind, w.ventricular_rate,
+        w.atrial_rate, w.pr_ms, w.qrs_ms, w.qt_ms, w.qtc_ms, w.statements, w.statement_codes,
         dromos_axis(w.p_axis_value) AS p_axis,
         dromos_axis(w.qrs_axis_value) AS qrs_axis,
         dromos_axis(w.t_axis_value) AS t_axis,
@@ -76,7 +78,7 @@ hashed AS (
     SELECT
         c.*,
         c.ecg_key || '/' || coalesce(c.read_kind, '?') AS dedup_key,
-        c.ecg_key || '/' || coalesce(c.read_kind_raw, '') AS key_raw,
+        c.ecg_key || '/' || coalesce(c.read_kind, '?') AS key_raw,
         hash(c.person_key, c.acquired_at, c.site, c.ventricular_rate, c.atrial_rate, c.pr_ms, c.qrs_ms,
              c.qt_ms, c.qtc_ms, c.p_axis, c.qrs_axis, c.t_axis, c.statements, c.statement_codes) AS content_hash
     FROM checked AS c

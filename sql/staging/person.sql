@@ -1,12 +1,12 @@
 -- Stage a person export.
--- Grain: one row per source record (record = 1-based data row number of the source file).
--- Input: view src (record + canonical columns as text), temp tables code_map, ingest_param;
+-- Grain: one row per source record (row_k = its position among the rows the reader parsed).
+-- Input: view src (row_k + canonical columns as text), temp tables code_map, ingest_param;
 -- parameter $date_formats. Output: temp table stage_checked (typed columns, problems, registry match), classified next
 -- by classify.sql.
 CREATE OR REPLACE TEMP TABLE stage_checked AS
 WITH typed AS (
     SELECT
-        s.record,
+        s.row_k,
         dromos_text(s.person_key) AS person_key_raw,
         dromos_person_key(dromos_text(s.person_key)) AS person_key,
         s.birth_date AS birth_date_raw,

@@ -2,5 +2,5 @@
 -- Grain: one row per duplicate record.
 INSERT INTO duplicate
 SELECT $source_id, record, dedup_key, duplicate_reason
-FROM stage
+FROM stage_outcome
 WHERE status = 'duplicate';

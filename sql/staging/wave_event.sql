@@ -4,7 +4,7 @@
 CREATE OR REPLACE TEMP TABLE stage_checked AS
 WITH typed AS (
     SELECT
-        s.record,
+        s.row_k,
         dromos_text(s.ecg_key) AS ecg_key,
         s.t_ms AS t_ms_raw,
         dromos_number(s.t_ms) AS t_ms,
