@@ -26,12 +26,13 @@ from cohort.registry import ensure_schema
 from cohort.sqlfiles import read_sql
 
 VALIDATION_RULES = Path(__file__).resolve().parent / "validation-v1.toml"
+# Per table: row-local staging statement, then the statement checking registry references.
 _STAGE_SQL = {
-    "person": "staging/person.sql",
-    "ecg": "staging/ecg.sql",
-    "wave_event": "staging/wave_event.sql",
-    "procedure": "staging/coded_event.sql",
-    "diagnosis": "staging/coded_event.sql",
+    "person": ("staging/person.sql", "staging/person_refs.sql"),
+    "ecg": ("staging/ecg.sql", "staging/ecg_refs.sql"),
+    "wave_event": ("staging/wave_event.sql", "staging/wave_event_refs.sql"),
+    "procedure": ("staging/coded_event.sql", "staging/coded_event_refs.sql"),
+    "diagnosis": ("staging/coded_event.sql", "staging/coded_event_refs.sql"),
 }
 _CODE_MAPS = {"person": {"sex_codes": "sex"}, "ecg": {"read_kind_codes": "read_kind"}, "wave_event": {"kind_codes": "kind"}}
 
@@ -113,8 +114,10 @@ def _stage(con, table: TableMapping, scanned: sources.ScanResult) -> None:
         "procedure": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
         "diagnosis": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
     }[table.table]
-    con.execute(read_sql(_STAGE_SQL[table.table]), params)
+    local_sql, refs_sql = _STAGE_SQL[table.table]
+    con.execute(read_sql(local_sql), params)
     scanned.finish(con)
+    con.execute(read_sql(refs_sql))
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
 
 

@@ -1,8 +1,9 @@
 -- Classify staged records: load, duplicate or quarantine, and number the exceptions.
 -- Grain: one row per staged record that is NOT simply loaded (problems, a key already in the
 -- registry, a key repeated in the file) or that was repaired; every other record loads.
--- Input: stage_checked (row_k, dedup_key, key_raw, problems, repairs, content_hash,
--- registry_hash, registry_source, ...) and skip_offset (k_start, lines_before): the source
+-- Input: stage_checked (row_k, dedup_key, key_raw, problems, repairs, content_hash, ...),
+-- stage_refs (row_k, problems, registry_hash, registry_source: registry references of the
+-- few records that have them) and skip_offset (k_start, lines_before): the source
 -- line of the k-th parsed row is k + lines_before of the last k_start <= k (header, empty and
 -- rejected lines are not parsed). A record with problems is quarantined. A clean record whose
 -- key is in the registry, or in an earlier clean record of the file, is a duplicate when its
@@ -16,11 +17,14 @@ WITH clean_repeats AS (
     HAVING count(*) > 1
 ),
 candidates AS (
-    SELECT c.row_k, c.dedup_key, c.key_raw, c.problems, c.repairs, c.content_hash,
-           c.registry_hash, c.registry_source, len(c.problems) = 0 AS clean
+    SELECT c.row_k, c.dedup_key, c.key_raw, c.repairs, c.content_hash,
+           list_concat(c.problems, coalesce(r.problems, [])) AS problems,
+           r.registry_hash, r.registry_source,
+           len(c.problems) = 0 AND coalesce(len(r.problems), 0) = 0 AS clean
     FROM stage_checked AS c
+    LEFT JOIN stage_refs AS r ON r.row_k = c.row_k
     WHERE len(c.problems) > 0
-       OR c.registry_hash IS NOT NULL
+       OR r.row_k IS NOT NULL
        OR len(c.repairs) > 0
        OR (len(c.problems) = 0 AND hash(c.dedup_key) IN (SELECT key_hash FROM clean_repeats))
 ),

@@ -2,8 +2,9 @@
 -- Grain: one row per source record. Key: (ecg_key, read_kind).
 -- Input: view src, temp tables code_map and ingest_param (ranges, unit factors, date bounds);
 -- parameters $timestamp_formats, $statement_separator, $code_separator.
--- Output: temp table stage_checked (typed columns, problems, repairs, registry match; raw text
--- is kept only inside problems), classified next by classify.sql.
+-- Output: temp table stage_checked (typed columns, problems, repairs; raw text is kept only
+-- inside problems). Row-local checks only: references to the registry (person known, dates
+-- within life, key already loaded) are checked next by ecg_refs.sql on the materialized rows.
 CREATE OR REPLACE TEMP TABLE stage_checked AS
 WITH typed AS (
     SELECT
@@ -38,11 +39,6 @@ WITH typed AS (
     LEFT JOIN code_map AS read_kind_code
         ON read_kind_code.field = 'read_kind' AND read_kind_code.source_value = lower(dromos_text(s.read_kind))
 ),
-with_person AS (
-    SELECT t.*, pe.person_key IS NOT NULL AS person_known, pe.birth_date, pe.death_date
-    FROM typed AS t
-    LEFT JOIN person AS pe ON pe.person_key = t.person_key
-),
 checked AS (
     SELECT
         w.row_k, w.ecg_key, w.person_key, w.acquired_at, w.site, w.read_kind, w.ventricular_rate,
@@ -52,13 +48,10 @@ checked AS (
         dromos_axis(w.t_axis_value) AS t_axis,
         list_filter([
             dromos_problem('ecg_key', w.ecg_key, w.ecg_key IS NULL, 'missing required value'),
-            dromos_problem('person_key', w.person_key_raw, w.person_key IS NULL, 'missing required value'),
-            dromos_problem('person_key', w.person_key_raw, w.person_key IS NOT NULL AND NOT w.person_known, 'unknown person (not in the registry; load the person file first)'),
+            dromos_problem('person_key', w.person_key, w.person_key IS NULL, 'missing required value'),
             dromos_problem('acquired_at', w.acquired_at_raw, dromos_text(w.acquired_at_raw) IS NULL, 'missing required value'),
             dromos_problem('acquired_at', w.acquired_at_raw, dromos_text(w.acquired_at_raw) IS NOT NULL AND w.acquired_at IS NULL, 'unparseable date'),
             dromos_problem('acquired_at', w.acquired_at_raw, CAST(w.acquired_at AS DATE) < p.earliest_date OR CAST(w.acquired_at AS DATE) > p.latest_date, 'date out of range'),
-            dromos_problem('acquired_at', w.acquired_at_raw, CAST(w.acquired_at AS DATE) < w.birth_date, 'acquired before birth'),
-            dromos_problem('acquired_at', w.acquired_at_raw, CAST(w.acquired_at AS DATE) > w.death_date + p.latest_slack_days, 'acquired after death'),
             dromos_problem('read_kind', w.read_kind_raw, w.read_kind IS NULL, 'unknown read kind'),
             dromos_number_problem('ventricular_rate', w.ventricular_rate_raw, w.ventricular_rate, p.ventricular_rate_lo, p.ventricular_rate_hi),
             dromos_number_problem('atrial_rate', w.atrial_rate_raw, w.atrial_rate, p.atrial_rate_lo, p.atrial_rate_hi),
@@ -71,7 +64,7 @@ checked AS (
             dromos_number_problem('t_axis', w.t_axis_raw, w.t_axis_value, p.t_axis_lo, p.t_axis_hi)
         ], lambda x: x IS NOT NULL) AS problems,
         list_filter(w.repair_candidates, lambda x: x IS NOT NULL) AS repairs
-    FROM with_person AS w
+    FROM typed AS w
     CROSS JOIN ingest_param AS p
 ),
 hashed AS (
@@ -82,13 +75,5 @@ hashed AS (
         hash(c.person_key, c.acquired_at, c.site, c.ventricular_rate, c.atrial_rate, c.pr_ms, c.qrs_ms,
              c.qt_ms, c.qtc_ms, c.p_axis, c.qrs_axis, c.t_axis, c.statements, c.statement_codes) AS content_hash
     FROM checked AS c
-),
-registry AS (
-    SELECT ecg_key || '/' || read_kind AS dedup_key, source_id AS registry_source,
-           hash(person_key, acquired_at, site, ventricular_rate, atrial_rate, pr_ms, qrs_ms,
-                qt_ms, qtc_ms, p_axis, qrs_axis, t_axis, statements, statement_codes) AS registry_hash
-    FROM ecg
 )
-SELECT h.*, g.registry_hash, g.registry_source
-FROM hashed AS h
-LEFT JOIN registry AS g ON g.dedup_key = h.dedup_key;
+SELECT * FROM hashed;

@@ -1,8 +1,8 @@
 -- Stage a person export.
 -- Grain: one row per source record (row_k = its position among the rows the reader parsed).
 -- Input: view src (row_k + canonical columns as text), temp tables code_map, ingest_param;
--- parameter $date_formats. Output: temp table stage_checked (typed columns, problems, registry match), classified next
--- by classify.sql.
+-- parameter $date_formats. Output: temp table stage_checked (typed columns, problems); the
+-- registry is consulted next by person_refs.sql, then classify.sql decides.
 CREATE OR REPLACE TEMP TABLE stage_checked AS
 WITH typed AS (
     SELECT
@@ -24,9 +24,9 @@ WITH typed AS (
 ),
 checked AS (
     SELECT
-        t.*,
+        t.* EXCLUDE (person_key_raw, birth_date_raw, sex_raw, death_date_raw, followup_end_raw),
         list_filter([
-            dromos_problem('person_key', t.person_key_raw, t.person_key IS NULL, 'missing required value'),
+            dromos_problem('person_key', t.person_key, t.person_key IS NULL, 'missing required value'),
             dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NULL, 'missing required value'),
             dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NOT NULL AND t.birth_date IS NULL, 'unparseable date'),
             dromos_problem('birth_date', t.birth_date_raw, t.birth_date < p.earliest_date OR t.birth_date > p.latest_date, 'date out of range'),
@@ -42,18 +42,10 @@ checked AS (
         hash(t.person_key, t.birth_date, t.sex, t.site, t.death_date, t.followup_end) AS content_hash
     FROM typed AS t
     CROSS JOIN ingest_param AS p
-),
-registry AS (
-    SELECT person_key, source_id AS registry_source,
-           hash(person_key, birth_date, sex, site, death_date, followup_end) AS registry_hash
-    FROM person
 )
 SELECT
     c.*,
     c.person_key AS dedup_key,
-    c.person_key_raw AS key_raw,
-    g.registry_hash,
-    g.registry_source,
+    c.person_key AS key_raw,
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
-FROM checked AS c
-LEFT JOIN registry AS g ON g.person_key = c.person_key;
+FROM checked AS c;

@@ -1,6 +1,7 @@
 -- Stage a beat-level wave export (P and QRS onset times of a tracing).
 -- Grain: one row per source record. Key: (ecg_key, t_ms, kind); a key seen again is a duplicate.
--- Input: view src, temp tables code_map and ingest_param. Output: temp table stage_checked.
+-- Input: view src, temp tables code_map and ingest_param. Output: temp table stage_checked
+-- (row-local checks; wave_event_refs.sql checks the tracing exists).
 CREATE OR REPLACE TEMP TABLE stage_checked AS
 WITH typed AS (
     SELECT
@@ -13,39 +14,18 @@ WITH typed AS (
     FROM src AS s
     LEFT JOIN code_map AS kind_code
         ON kind_code.field = 'kind' AND kind_code.source_value = lower(dromos_text(s.kind))
-),
-known AS (
-    SELECT DISTINCT ecg_key FROM ecg
-),
-checked AS (
-    SELECT
-        t.*,
-        list_filter([
-            dromos_problem('ecg_key', t.ecg_key, t.ecg_key IS NULL, 'missing required value'),
-            dromos_problem('ecg_key', t.ecg_key, t.ecg_key IS NOT NULL AND k.ecg_key IS NULL, 'unknown tracing (not in the registry; load the ECG file first)'),
-            dromos_problem('t_ms', t.t_ms_raw, dromos_text(t.t_ms_raw) IS NULL, 'missing required value'),
-            dromos_number_problem('t_ms', t.t_ms_raw, t.t_ms, p.t_ms_lo, p.t_ms_hi),
-            dromos_problem('kind', t.kind_raw, t.kind IS NULL, 'unknown wave kind (expected P or QRS)')
-        ], lambda x: x IS NOT NULL) AS problems,
-        t.ecg_key || '/' || CAST(t.t_ms AS VARCHAR) || '/' || coalesce(t.kind, '?') AS dedup_key,
-        t.ecg_key || '/' || coalesce(t.t_ms_raw, '') || '/' || coalesce(t.kind_raw, '') AS key_raw,
-        hash(t.ecg_key, t.t_ms, t.kind) AS content_hash
-    FROM typed AS t
-    CROSS JOIN ingest_param AS p
-    LEFT JOIN known AS k ON k.ecg_key = t.ecg_key
-),
-registry AS (
-    SELECT ecg_key || '/' || CAST(t_ms AS VARCHAR) || '/' || kind AS dedup_key,
-           any_value(hash(ecg_key, t_ms, kind)) AS registry_hash,
-           any_value(source_id) AS registry_source
-    FROM wave_event
-    WHERE ecg_key IN (SELECT ecg_key FROM typed)
-    GROUP BY ALL
 )
 SELECT
-    c.*,
-    g.registry_hash,
-    g.registry_source,
-    CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
-FROM checked AS c
-LEFT JOIN registry AS g ON g.dedup_key = c.dedup_key;
+    t.row_k, t.ecg_key, t.t_ms, t.kind,
+    list_filter([
+        dromos_problem('ecg_key', t.ecg_key, t.ecg_key IS NULL, 'missing required value'),
+        dromos_problem('t_ms', t.t_ms_raw, dromos_text(t.t_ms_raw) IS NULL, 'missing required value'),
+        dromos_number_problem('t_ms', t.t_ms_raw, t.t_ms, p.t_ms_lo, p.t_ms_hi),
+        dromos_problem('kind', t.kind_raw, t.kind IS NULL, 'unknown wave kind (expected P or QRS)')
+    ], lambda x: x IS NOT NULL) AS problems,
+    CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs,
+    t.ecg_key || '/' || CAST(t.t_ms AS VARCHAR) || '/' || coalesce(t.kind, '?') AS dedup_key,
+    t.ecg_key || '/' || coalesce(t.t_ms_raw, '') || '/' || coalesce(t.kind_raw, '') AS key_raw,
+    hash(t.ecg_key, t.t_ms, t.kind) AS content_hash
+FROM typed AS t
+CROSS JOIN ingest_param AS p;
