@@ -5,75 +5,90 @@
 -- Output: temp table stage_checked (typed columns, problems, repairs; raw text is kept only
 -- inside problems). Row-local checks only: references to the registry (person known, dates
 -- within life, key already loaded) are checked next by ecg_refs.sql on the materialized rows.
+-- Each raw value is parsed once; problem and repair lists are built only for rows that have one
+-- (most rows are clean, and building lists for every row dominated the cost).
 CREATE OR REPLACE TEMP TABLE stage_checked AS
-WITH typed AS (
+WITH parsed AS (
     SELECT
         s.row_k,
         dromos_text(s.ecg_key) AS ecg_key,
-        dromos_text(s.person_key) AS person_key_raw,
         dromos_person_key(dromos_text(s.person_key)) AS person_key,
         s.acquired_at AS acquired_at_raw,
         CAST(try_strptime(dromos_text(s.acquired_at), $timestamp_formats) AS TIMESTAMP) AS acquired_at,
         dromos_text(s.site) AS site,
         s.read_kind AS read_kind_raw,
-        CASE WHEN dromos_text(s.read_kind) IS NULL THEN 'machine' ELSE read_kind_code.code END AS read_kind,
-        s.ventricular_rate AS ventricular_rate_raw, dromos_number(s.ventricular_rate) AS ventricular_rate,
-        s.atrial_rate AS atrial_rate_raw, dromos_number(s.atrial_rate) AS atrial_rate,
-        s.pr_ms AS pr_ms_raw, dromos_interval_ms(s.pr_ms, p.pr_ms_factor, p.seconds_lower, p.seconds_upper) AS pr_ms,
-        s.qrs_ms AS qrs_ms_raw, dromos_interval_ms(s.qrs_ms, p.qrs_ms_factor, p.seconds_lower, p.seconds_upper) AS qrs_ms,
-        s.qt_ms AS qt_ms_raw, dromos_interval_ms(s.qt_ms, p.qt_ms_factor, p.seconds_lower, p.seconds_upper) AS qt_ms,
-        s.qtc_ms AS qtc_ms_raw, dromos_interval_ms(s.qtc_ms, p.qtc_ms_factor, p.seconds_lower, p.seconds_upper) AS qtc_ms,
-        s.p_axis AS p_axis_raw, dromos_number(s.p_axis) AS p_axis_value,
-        s.qrs_axis AS qrs_axis_raw, dromos_number(s.qrs_axis) AS qrs_axis_value,
-        s.t_axis AS t_axis_raw, dromos_number(s.t_axis) AS t_axis_value,
-        list_filter(list_transform(string_split(coalesce(s.statements, ''), $statement_separator), lambda x: trim(x)), lambda x: x <> '') AS statements,
-        list_filter(list_transform(string_split(coalesce(s.statement_codes, ''), $code_separator), lambda x: trim(x)), lambda x: x <> '') AS statement_codes,
-        [
-            dromos_repair('pr_ms', s.pr_ms, p.pr_ms_factor, p.seconds_lower, p.seconds_upper, 'interval given in seconds'),
-            dromos_repair('qrs_ms', s.qrs_ms, p.qrs_ms_factor, p.seconds_lower, p.seconds_upper, 'interval given in seconds'),
-            dromos_repair('qt_ms', s.qt_ms, p.qt_ms_factor, p.seconds_lower, p.seconds_upper, 'interval given in seconds'),
-            dromos_repair('qtc_ms', s.qtc_ms, p.qtc_ms_factor, p.seconds_lower, p.seconds_upper, 'interval given in seconds')
-        ] AS repair_candidates
+        CASE WHEN s.read_kind IS NULL THEN 'machine' ELSE read_kind_code.code END AS read_kind,
+        s.ventricular_rate AS ventricular_rate_raw, TRY_CAST(s.ventricular_rate AS DOUBLE) AS ventricular_rate,
+        s.atrial_rate AS atrial_rate_raw, TRY_CAST(s.atrial_rate AS DOUBLE) AS atrial_rate,
+        s.pr_ms AS pr_ms_raw, TRY_CAST(s.pr_ms AS DOUBLE) AS pr_value,
+        s.qrs_ms AS qrs_ms_raw, TRY_CAST(s.qrs_ms AS DOUBLE) AS qrs_value,
+        s.qt_ms AS qt_ms_raw, TRY_CAST(s.qt_ms AS DOUBLE) AS qt_value,
+        s.qtc_ms AS qtc_ms_raw, TRY_CAST(s.qtc_ms AS DOUBLE) AS qtc_value,
+        s.p_axis AS p_axis_raw, TRY_CAST(s.p_axis AS DOUBLE) AS p_axis_value,
+        s.qrs_axis AS qrs_axis_raw, TRY_CAST(s.qrs_axis AS DOUBLE) AS qrs_axis_value,
+        s.t_axis AS t_axis_raw, TRY_CAST(s.t_axis AS DOUBLE) AS t_axis_value,
+        dromos_split(s.statements, $statement_separator) AS statements,
+        dromos_split(s.statement_codes, $code_separator) AS statement_codes,
+        -- an interval declared in ms that can only be seconds (validation rules) is converted
+        p.pr_ms_factor = 1 AND pr_value >= p.seconds_lower AND pr_value < p.seconds_upper AS pr_in_seconds,
+        p.qrs_ms_factor = 1 AND qrs_value >= p.seconds_lower AND qrs_value < p.seconds_upper AS qrs_in_seconds,
+        p.qt_ms_factor = 1 AND qt_value >= p.seconds_lower AND qt_value < p.seconds_upper AS qt_in_seconds,
+        p.qtc_ms_factor = 1 AND qtc_value >= p.seconds_lower AND qtc_value < p.seconds_upper AS qtc_in_seconds,
+        p.pr_ms_factor, p.qrs_ms_factor, p.qt_ms_factor, p.qtc_ms_factor
     FROM src AS s
     CROSS JOIN ingest_param AS p
     LEFT JOIN code_map AS read_kind_code
         ON read_kind_code.field = 'read_kind' AND read_kind_code.source_value = lower(dromos_text(s.read_kind))
 ),
-checked AS (
+converted AS (
     SELECT
-        w.row_k, w.ecg_key, w.person_key, w.acquired_at, w.site, w.read_kind, w.ventricular_rate,
-        w.atrial_rate, w.pr_ms, w.qrs_ms, w.qt_ms, w.qtc_ms, w.statements, w.statement_codes,
-        dromos_axis(w.p_axis_value) AS p_axis,
-        dromos_axis(w.qrs_axis_value) AS qrs_axis,
-        dromos_axis(w.t_axis_value) AS t_axis,
-        list_filter([
-            dromos_problem('ecg_key', w.ecg_key, w.ecg_key IS NULL, 'missing required value'),
-            dromos_problem('person_key', w.person_key, w.person_key IS NULL, 'missing required value'),
-            dromos_problem('acquired_at', w.acquired_at_raw, dromos_text(w.acquired_at_raw) IS NULL, 'missing required value'),
-            dromos_problem('acquired_at', w.acquired_at_raw, dromos_text(w.acquired_at_raw) IS NOT NULL AND w.acquired_at IS NULL, 'unparseable date'),
-            dromos_problem('acquired_at', w.acquired_at_raw, CAST(w.acquired_at AS DATE) < p.earliest_date OR CAST(w.acquired_at AS DATE) > p.latest_date, 'date out of range'),
-            dromos_problem('read_kind', w.read_kind_raw, w.read_kind IS NULL, 'unknown read kind'),
-            dromos_number_problem('ventricular_rate', w.ventricular_rate_raw, w.ventricular_rate, p.ventricular_rate_lo, p.ventricular_rate_hi),
-            dromos_number_problem('atrial_rate', w.atrial_rate_raw, w.atrial_rate, p.atrial_rate_lo, p.atrial_rate_hi),
-            dromos_number_problem('pr_ms', w.pr_ms_raw, w.pr_ms, p.pr_ms_lo, p.pr_ms_hi),
-            dromos_number_problem('qrs_ms', w.qrs_ms_raw, w.qrs_ms, p.qrs_ms_lo, p.qrs_ms_hi),
-            dromos_number_problem('qt_ms', w.qt_ms_raw, w.qt_ms, p.qt_ms_lo, p.qt_ms_hi),
-            dromos_number_problem('qtc_ms', w.qtc_ms_raw, w.qtc_ms, p.qtc_ms_lo, p.qtc_ms_hi),
-            dromos_number_problem('p_axis', w.p_axis_raw, w.p_axis_value, p.p_axis_lo, p.p_axis_hi),
-            dromos_number_problem('qrs_axis', w.qrs_axis_raw, w.qrs_axis_value, p.qrs_axis_lo, p.qrs_axis_hi),
-            dromos_number_problem('t_axis', w.t_axis_raw, w.t_axis_value, p.t_axis_lo, p.t_axis_hi)
-        ], lambda x: x IS NOT NULL) AS problems,
-        list_filter(w.repair_candidates, lambda x: x IS NOT NULL) AS repairs
-    FROM typed AS w
-    CROSS JOIN ingest_param AS p
+        *,
+        CASE WHEN pr_in_seconds THEN pr_value * 1000 ELSE pr_value * pr_ms_factor END AS pr_ms,
+        CASE WHEN qrs_in_seconds THEN qrs_value * 1000 ELSE qrs_value * qrs_ms_factor END AS qrs_ms,
+        CASE WHEN qt_in_seconds THEN qt_value * 1000 ELSE qt_value * qt_ms_factor END AS qt_ms,
+        CASE WHEN qtc_in_seconds THEN qtc_value * 1000 ELSE qtc_value * qtc_ms_factor END AS qtc_ms
+    FROM parsed
 ),
-hashed AS (
+found AS (
     SELECT
         c.*,
-        c.ecg_key || '/' || coalesce(c.read_kind, '?') AS dedup_key,
-        c.ecg_key || '/' || coalesce(c.read_kind, '?') AS key_raw,
-        hash(c.person_key, c.acquired_at, c.site, c.ventricular_rate, c.atrial_rate, c.pr_ms, c.qrs_ms,
-             c.qt_ms, c.qtc_ms, c.p_axis, c.qrs_axis, c.t_axis, c.statements, c.statement_codes) AS content_hash
-    FROM checked AS c
+        dromos_problem('ecg_key', c.ecg_key, c.ecg_key IS NULL, 'missing required value') AS f1,
+        dromos_problem('person_key', c.person_key, c.person_key IS NULL, 'missing required value') AS f2,
+        dromos_problem('acquired_at', c.acquired_at_raw, c.acquired_at IS NULL AND dromos_text(c.acquired_at_raw) IS NULL, 'missing required value') AS f3,
+        dromos_problem('acquired_at', c.acquired_at_raw, c.acquired_at IS NULL AND dromos_text(c.acquired_at_raw) IS NOT NULL, 'unparseable date') AS f4,
+        dromos_problem('acquired_at', c.acquired_at_raw, CAST(c.acquired_at AS DATE) < p.earliest_date OR CAST(c.acquired_at AS DATE) > p.latest_date, 'date out of range') AS f5,
+        dromos_problem('read_kind', c.read_kind_raw, c.read_kind IS NULL, 'unknown read kind') AS f6,
+        dromos_number_problem('ventricular_rate', c.ventricular_rate_raw, c.ventricular_rate, p.ventricular_rate_lo, p.ventricular_rate_hi) AS f7,
+        dromos_number_problem('atrial_rate', c.atrial_rate_raw, c.atrial_rate, p.atrial_rate_lo, p.atrial_rate_hi) AS f8,
+        dromos_number_problem('pr_ms', c.pr_ms_raw, c.pr_ms, p.pr_ms_lo, p.pr_ms_hi) AS f9,
+        dromos_number_problem('qrs_ms', c.qrs_ms_raw, c.qrs_ms, p.qrs_ms_lo, p.qrs_ms_hi) AS f10,
+        dromos_number_problem('qt_ms', c.qt_ms_raw, c.qt_ms, p.qt_ms_lo, p.qt_ms_hi) AS f11,
+        dromos_number_problem('qtc_ms', c.qtc_ms_raw, c.qtc_ms, p.qtc_ms_lo, p.qtc_ms_hi) AS f12,
+        dromos_number_problem('p_axis', c.p_axis_raw, c.p_axis_value, p.p_axis_lo, p.p_axis_hi) AS f13,
+        dromos_number_problem('qrs_axis', c.qrs_axis_raw, c.qrs_axis_value, p.qrs_axis_lo, p.qrs_axis_hi) AS f14,
+        dromos_number_problem('t_axis', c.t_axis_raw, c.t_axis_value, p.t_axis_lo, p.t_axis_hi) AS f15
+    FROM converted AS c
+    CROSS JOIN ingest_param AS p
 )
-SELECT * FROM hashed;
+SELECT
+    row_k, ecg_key, person_key, acquired_at, site, read_kind, ventricular_rate, atrial_rate,
+    pr_ms, qrs_ms, qt_ms, qtc_ms,
+    dromos_axis(p_axis_value) AS p_axis,
+    dromos_axis(qrs_axis_value) AS qrs_axis,
+    dromos_axis(t_axis_value) AS t_axis,
+    statements, statement_codes,
+    CASE WHEN coalesce(f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12, f13, f14, f15) IS NULL THEN []
+         ELSE list_filter([f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12, f13, f14, f15], lambda x: x IS NOT NULL)
+    END AS problems,
+    CASE WHEN pr_in_seconds OR qrs_in_seconds OR qt_in_seconds OR qtc_in_seconds THEN list_filter([
+        CASE WHEN pr_in_seconds THEN {'field': 'pr_ms', 'raw_value': pr_ms_raw, 'repaired_value': CAST(pr_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
+        CASE WHEN qrs_in_seconds THEN {'field': 'qrs_ms', 'raw_value': qrs_ms_raw, 'repaired_value': CAST(qrs_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
+        CASE WHEN qt_in_seconds THEN {'field': 'qt_ms', 'raw_value': qt_ms_raw, 'repaired_value': CAST(qt_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
+        CASE WHEN qtc_in_seconds THEN {'field': 'qtc_ms', 'raw_value': qtc_ms_raw, 'repaired_value': CAST(qtc_ms AS VARCHAR), 'rule': 'interval given in seconds'} END
+    ], lambda x: x IS NOT NULL) ELSE [] END AS repairs,
+    ecg_key || '/' || coalesce(read_kind, '?') AS dedup_key,
+    ecg_key || '/' || coalesce(read_kind, '?') AS key_raw,
+    hash(person_key, acquired_at, site, ventricular_rate, atrial_rate, pr_ms, qrs_ms, qt_ms, qtc_ms,
+         dromos_axis(p_axis_value), dromos_axis(qrs_axis_value), dromos_axis(t_axis_value),
+         statements, statement_codes) AS content_hash
+FROM found;

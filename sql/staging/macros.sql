@@ -31,3 +31,14 @@ CREATE OR REPLACE TEMP MACRO dromos_repair(field_name, raw, factor, s_lo, s_hi, 
 CREATE OR REPLACE TEMP MACRO dromos_axis(value) AS CASE WHEN value > 180 THEN value - 360 ELSE value END;
 -- Date from text with any of the given formats (a list known when the statement is bound).
 CREATE OR REPLACE TEMP MACRO dromos_date(x, formats) AS CAST(try_strptime(dromos_text(x), formats) AS DATE);
+-- Split a field holding several values; items are trimmed and empty items dropped. Tidy text
+-- (no stray blanks or empty items) takes the plain split, which is several times cheaper.
+CREATE OR REPLACE TEMP MACRO dromos_split(x, sep) AS
+    CASE
+        WHEN x IS NULL THEN []
+        WHEN trim(x) = x AND NOT contains(x, '  ') AND NOT contains(x, sep || sep)
+             AND NOT starts_with(x, sep) AND NOT ends_with(x, sep)
+             AND NOT contains(x, ' ' || sep) AND NOT contains(x, sep || ' ')
+            THEN string_split(x, sep)
+        ELSE list_filter(list_transform(string_split(x, sep), lambda item: trim(item)), lambda item: item <> '')
+    END;
