@@ -236,7 +236,10 @@ def _load_scanned(
                 "Check the delimiter and quote settings in the mapping and that the file is UTF-8 "
                 "(convert with e.g. iconv -f latin1 -t utf-8)."
             )
-        loaded, quarantined, duplicate, repaired = _write_outcomes(con, table, source_id, scanned.rejected)
+        rejected = scanned.rejected
+        if key is not None:  # a raw line holds the plain person id: keep only the reason
+            rejected = [(record, column, None, reason) for record, column, _, reason in rejected]
+        loaded, quarantined, duplicate, repaired = _write_outcomes(con, table, source_id, rejected)
         seconds = time.perf_counter() - started
         rows_read = staged + len(scanned.rejected)
         con.execute(

@@ -29,6 +29,8 @@ class ScanResult:
     empty_lines: list[int] = field(default_factory=list)
     rejected: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     """(record, field, raw line, reason) of lines the reader could not split into fields."""
+    preset_rejects: list[tuple[int, str | None, str, str]] = field(default_factory=list)
+    """Lines a Python reader (FHIR) rejected itself, numbered as records already."""
 
     def finish(self, con) -> None:
         """After staging read the file: collect rejected lines, build table ``skip_offset``.
@@ -49,7 +51,7 @@ class ScanResult:
         self.rejected = [
             (line - self.header_lines, column if "ENCODING" in kinds else None, raw, _reject_reason(kinds))
             for line, column, raw, kinds in rejects
-        ]
+        ] + list(self.preset_rejects)
         skipped = sorted({line for line, *_ in rejects} | set(self.empty_lines) | set(range(1, self.header_lines + 1)))
         # consecutive skipped lines share a k_start: the last (largest count) applies
         offsets = list({line - j + 1: j for j, line in enumerate(skipped, start=1)}.items())
