@@ -118,6 +118,14 @@ def _stage(con, table: TableMapping, scanned: sources.ScanResult) -> None:
     con.execute(read_sql(local_sql), params)
     scanned.finish(con)
     con.execute(read_sql(refs_sql))
+    for row_k, line in scanned.miscounted:
+        problem = {"field": None, "raw_value": line, "reason": "malformed line (too many columns)"}
+        updated = con.execute(
+            "UPDATE stage_refs SET problems = list_append(problems, $p) WHERE row_k = $k RETURNING row_k",
+            {"p": problem, "k": row_k},
+        ).fetchall()
+        if not updated:
+            con.execute("INSERT INTO stage_refs VALUES ($k, [$p], NULL, NULL)", {"p": problem, "k": row_k})
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
 
 

@@ -31,6 +31,10 @@ class ScanResult:
     """(record, field, raw line, reason) of lines the reader could not split into fields."""
     preset_rejects: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     """Lines a Python reader (FHIR) rejected itself, numbered as records already."""
+    csv_layout: tuple[Path, str, str, int] | None = None
+    """(path, delimiter, quote, number of columns) of a CSV source, for the field-count check."""
+    miscounted: list[tuple[int, str]] = field(default_factory=list)
+    """(row_k, raw line) of parsed rows whose line has one field too many (see finish)."""
 
     def finish(self, con) -> None:
         """After staging read the file: collect rejected lines, build table ``skip_offset``.
@@ -58,6 +62,47 @@ class ScanResult:
         con.execute("CREATE OR REPLACE TEMP TABLE skip_offset (k_start BIGINT, lines_before BIGINT)")
         if offsets:
             con.executemany("INSERT INTO skip_offset VALUES (?, ?)", offsets)
+        if self.csv_layout:
+            self.miscounted = _trailing_extra_fields(con, *self.csv_layout, self.empty_lines, skipped)
+
+
+def _trailing_extra_fields(con, path: Path, delimiter: str, quote: str, n_columns: int,
+                           empty_lines: list[int], skipped: list[int]) -> list[tuple[int, str]]:
+    """Parsed rows whose line ends in one extra, empty field.
+
+    DuckDB's reader accepts a line with one field too many when that field is empty (a
+    trailing delimiter), which would shift every value one column to the right. Lines ending
+    in the delimiter are re-counted here (quoted text removed first) and returned as
+    (row_k, line) so that they are quarantined instead.
+    """
+    path_text = str(path).replace("'", "''")
+    d = delimiter.replace("'", "''")
+    q = quote.replace("'", "''")
+    unquoted = f"regexp_replace(l, '{q}[^{q}]*{q}', '', 'g')" if q else "l"
+    rows = con.execute(
+        f"""
+        SELECT n, l FROM (
+            SELECT row_number() OVER () AS n, l
+            FROM read_csv('{path_text}', header = false, columns = {{'l': 'VARCHAR'}}, delim = '\x01',
+                          quote = '', escape = '', auto_detect = false, strict_mode = false,
+                          encoding = 'latin-1',  -- decodes any byte: line numbers stay aligned
+                          null_padding = true, max_line_size = 10000000)
+        )
+        WHERE ends_with(l, '{d}')
+          AND (length({unquoted}) - length(replace({unquoted}, '{d}', ''))) / length('{d}') >= {n_columns}
+        """
+    ).fetchall()
+    found = []
+    blanks = sorted(empty_lines)
+    for ordinal, line in rows:  # the line scan skips empty lines: map back to file lines
+        file_line = ordinal
+        for blank in blanks:
+            if blank <= file_line:
+                file_line += 1
+        row_k = file_line - sum(1 for s in skipped if s < file_line)
+        if file_line not in skipped:
+            found.append((row_k, line))
+    return found
 
 
 def file_digest(path: Path) -> tuple[str, list[int]]:
@@ -157,7 +202,10 @@ def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping, sha256: str
         """
     )
     _create_src_view(con, "raw_numbered", table, set())
-    return ScanResult(sha256=sha256, kind="csv", header_lines=header_lines, empty_lines=empty_lines)
+    return ScanResult(
+        sha256=sha256, kind="csv", header_lines=header_lines, empty_lines=empty_lines,
+        csv_layout=(path, options["delimiter"], options["quote"], len(header)),
+    )
 
 
 def _reject_reason(error_types: str) -> str:
