@@ -1,7 +1,8 @@
 -- Classify staged records: load, duplicate or quarantine, and number the exceptions.
 -- Grain: one row per staged record that is NOT simply loaded (problems, a key already in the
 -- registry, a key repeated in the file) or that was repaired; every other record loads.
--- Input: stage_checked (row_k, dedup_key, key_raw, problems, repairs, content_hash, ...),
+-- Input: stage_checked (row_k, dedup_key (a row of the key columns), problems, repairs,
+-- content_hash, ...),
 -- stage_refs (row_k, problems, registry_hash, registry_source: registry references of the
 -- few records that have them) and skip_offset (k_start, lines_before): the source
 -- line of the k-th parsed row is k + lines_before of the last k_start <= k (header, empty and
@@ -17,7 +18,7 @@ WITH clean_repeats AS (
     HAVING count(*) > 1
 ),
 candidates AS (
-    SELECT c.row_k, c.dedup_key, c.key_raw, c.repairs, c.content_hash,
+    SELECT c.row_k, c.dedup_key, c.repairs, c.content_hash,
            list_concat(c.problems, coalesce(r.problems, [])) AS problems,
            r.registry_hash, r.registry_source,
            len(c.problems) = 0 AND coalesce(len(r.problems), 0) = 0 AS clean
@@ -56,7 +57,7 @@ judged AS (
 SELECT
     j.row_k,
     j.row_k + coalesce(o.lines_before, 0) - $header_lines AS record,
-    j.dedup_key,
+    CAST(j.dedup_key AS VARCHAR) AS dedup_key,
     CASE
         WHEN NOT j.clean OR j.conflict THEN 'quarantine'
         WHEN j.key_finding IS NOT NULL THEN 'duplicate'
@@ -64,7 +65,7 @@ SELECT
     END AS status,
     CASE WHEN NOT j.conflict THEN j.key_finding END AS duplicate_reason,
     CASE
-        WHEN j.conflict THEN [{'field': 'key', 'raw_value': j.key_raw, 'reason': j.key_finding}]
+        WHEN j.conflict THEN [{'field': 'key', 'raw_value': CAST(j.dedup_key AS VARCHAR), 'reason': j.key_finding}]
         ELSE j.problems
     END AS problems,
     j.repairs

@@ -24,8 +24,7 @@ checked AS (
             dromos_problem('date', t.date_raw, t.date < p.earliest_date OR t.date > p.latest_date, 'date out of range'),
             dromos_problem('code', t.code, t.code IS NULL, 'missing required value')
         ], lambda x: x IS NOT NULL) AS problems,
-        concat_ws('/', t.person_key, CAST(t.date AS VARCHAR), t.code_system, t.code) AS dedup_key,
-        concat_ws('/', t.person_key, t.date_raw, t.code_system, t.code) AS key_raw,
+        row(t.person_key, t.date, t.code_system, t.code) AS dedup_key,
         hash(t.person_key, t.date, t.code_system, t.code) AS content_hash
     FROM typed AS t
     CROSS JOIN ingest_param AS p

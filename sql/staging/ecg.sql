@@ -86,8 +86,7 @@ SELECT
         CASE WHEN qt_in_seconds THEN {'field': 'qt_ms', 'raw_value': qt_ms_raw, 'repaired_value': CAST(qt_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
         CASE WHEN qtc_in_seconds THEN {'field': 'qtc_ms', 'raw_value': qtc_ms_raw, 'repaired_value': CAST(qtc_ms AS VARCHAR), 'rule': 'interval given in seconds'} END
     ], lambda x: x IS NOT NULL) ELSE [] END AS repairs,
-    ecg_key || '/' || coalesce(read_kind, '?') AS dedup_key,
-    ecg_key || '/' || coalesce(read_kind, '?') AS key_raw,
+    row(ecg_key, read_kind) AS dedup_key,
     hash(person_key, acquired_at, site, ventricular_rate, atrial_rate, pr_ms, qrs_ms, qt_ms, qtc_ms,
          dromos_axis(p_axis_value), dromos_axis(qrs_axis_value), dromos_axis(t_axis_value),
          statements, statement_codes) AS content_hash

@@ -45,7 +45,6 @@ checked AS (
 )
 SELECT
     c.*,
-    c.person_key AS dedup_key,
-    c.person_key AS key_raw,
+    row(c.person_key) AS dedup_key,
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
 FROM checked AS c;

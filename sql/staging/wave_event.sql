@@ -24,8 +24,7 @@ SELECT
         dromos_problem('kind', t.kind_raw, t.kind IS NULL, 'unknown wave kind (expected P or QRS)')
     ], lambda x: x IS NOT NULL) AS problems,
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs,
-    t.ecg_key || '/' || CAST(t.t_ms AS VARCHAR) || '/' || coalesce(t.kind, '?') AS dedup_key,
-    t.ecg_key || '/' || coalesce(t.t_ms_raw, '') || '/' || coalesce(t.kind_raw, '') AS key_raw,
+    row(t.ecg_key, t.t_ms, t.kind) AS dedup_key,
     hash(t.ecg_key, t.t_ms, t.kind) AS content_hash
 FROM typed AS t
 CROSS JOIN ingest_param AS p;
