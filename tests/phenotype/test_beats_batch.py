@@ -1,0 +1,155 @@
+"""Registry batch mode of the beat classifier (table beat_pattern) on a tiny DuckDB."""
+
+from __future__ import annotations
+
+import re
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pytest
+
+from cohort.phenotype.beats import DEFAULT_RULES_PATH, classify_strip, load_rules
+from cohort.phenotype.beats_batch import _fast_one_to_one, _read_strips, classify_registry
+from cohort.registry import ensure_schema
+from cohort.sqlfiles import read_sql
+from cohort.vocabulary import BEAT_PATTERNS
+from tests.phenotype.test_beats import (
+    PATTERN_CASES,
+    independent,
+    jitter,
+    mobitz_ii,
+    sinus,
+    wenckebach,
+)
+
+EXPECTED_COLUMNS = [
+    ("ecg_key", "VARCHAR"), ("pattern", "VARCHAR"), ("ratio", "VARCHAR"),
+    ("atrial_rate", "DOUBLE"), ("ventricular_rate", "DOUBLE"), ("escape_rate", "DOUBLE"),
+    ("pr_median_ms", "DOUBLE"), ("n_p", "INTEGER"), ("n_qrs", "INTEGER"),
+    ("n_not_conducted", "INTEGER"), ("evidence", "VARCHAR[]"), ("rules_id", "VARCHAR"),
+]
+
+
+def _registry(strips: dict[str, tuple[list, list]]):
+    con = duckdb.connect()
+    ensure_schema(con)
+    keys, ts, kinds = [], [], []
+    for key, (p, q) in strips.items():
+        keys += [key] * (len(p) + len(q))
+        ts += list(p) + list(q)
+        kinds += ["P"] * len(p) + ["QRS"] * len(q)
+    con.register("_events", pa.table({"ecg_key": keys, "t_ms": np.asarray(ts, float), "kind": kinds}))
+    con.execute("INSERT INTO wave_event SELECT ecg_key, t_ms, kind, 'test' FROM _events")
+    con.unregister("_events")
+    return con
+
+
+def _row(res, key: str) -> tuple:
+    return (key, res.pattern, res.ratio, res.atrial_rate_bpm, res.ventricular_rate_bpm,
+            res.escape_rate_bpm, res.pr_median_ms, res.n_p, res.n_qrs, res.n_not_conducted,
+            list(res.evidence), res.rules_id)
+
+
+@pytest.fixture
+def strips():
+    out = {f"{pattern}-{i}": case for pattern, cases in PATTERN_CASES.items()
+           for i, case in enumerate(cases)}
+    out["jittered-normal"] = jitter(*sinus(14), seed=3)
+    out["nan-onsets"] = ([*sinus(12)[0], float("nan")], sinus(12)[1])
+    out["only-p"] = (sinus(10)[0], [])
+    return out
+
+
+def test_batch_rows_equal_per_strip_results(strips):
+    con = _registry(strips)
+    assert classify_registry(con) == len(strips)
+    rows = con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall()
+    assert [r[0] for r in rows] == sorted(strips)
+    for row in rows:
+        p, q = strips[row[0]]
+        assert tuple(row) == _row(classify_strip(p, q), row[0])
+
+
+def test_beat_pattern_table_columns_and_types(strips):
+    con = _registry(strips)
+    classify_registry(con)
+    described = con.execute("DESCRIBE beat_pattern").fetchall()
+    assert [(c[0], c[1]) for c in described] == EXPECTED_COLUMNS
+
+
+def test_rerun_replaces_the_table_and_records_the_rules(strips, tmp_path):
+    con = _registry(strips)
+    classify_registry(con)
+    n = classify_registry(con)
+    assert con.execute("SELECT count(*), count(DISTINCT ecg_key) FROM beat_pattern").fetchall() == [(n, n)]
+    text = DEFAULT_RULES_PATH.read_text(encoding="utf-8")
+    path = tmp_path / "beats-alt.toml"
+    path.write_text(text.replace('id = "beats-v1"', 'id = "beats-alt"'), encoding="utf-8")
+    classify_registry(con, rules=path)
+    assert con.execute("SELECT DISTINCT rules_id FROM beat_pattern").fetchall() == [("beats-alt",)]
+
+
+def test_progress_is_reported(strips):
+    calls = []
+    classify_registry(_registry(strips), progress=lambda done, total: calls.append((done, total)))
+    assert calls[-1] == (len(strips), len(strips))
+    assert all(d <= t for d, t in calls)
+
+
+def test_vectorized_path_matches_the_per_strip_classifier():
+    # clean 1:1 strips (with a leading QRS and a closing P cut by the strip edges) take the
+    # vectorized path; its rows must equal those of classify_strip exactly
+    rng = np.random.default_rng(11)
+    strips = {}
+    for i in range(40):
+        pp, pr = rng.uniform(550, 1150), rng.uniform(110, 320)
+        p, q = jitter(*sinus(int(10_000 // pp), pp, pr), seed=i)
+        if i % 3 == 0:
+            q = [p[0] - pp + pr, *q]  # QRS of a P before the strip
+        if i % 4 == 0:
+            q = q[:-1]  # strip ends before the last QRS
+        strips[f"s{i:02d}"] = (p, q)
+    strips["block"] = wenckebach([4, 4, 4])
+    strips["m2"] = mobitz_ii([4, 4, 4])
+    con = _registry(strips)
+    fast = _fast_one_to_one(_read_strips(con), load_rules())
+    keys = sorted(strips)
+    taken = {keys[i] for i in fast["index"].tolist()}
+    assert len(taken) >= 30 and not {"block", "m2"} & taken
+    classify_registry(con)
+    for row in con.execute("SELECT * FROM beat_pattern").fetchall():
+        assert tuple(row) == _row(classify_strip(*strips[row[0]]), row[0])
+
+
+def test_sql_pattern_check_matches_the_vocabulary():
+    ddl = read_sql("phenotype/beat_pattern_table.sql")
+    listed = re.findall(r"'([a-z_]+)'", ddl[ddl.index("CHECK"):])
+    assert sorted(listed) == sorted(BEAT_PATTERNS)
+
+
+def test_batch_works_inside_an_open_transaction():
+    con = _registry({"a": sinus(12), "b": independent(12_000, 750, 1579, 100, 450)})
+    con.execute("BEGIN TRANSACTION")
+    assert classify_registry(con) == 2
+    con.execute("ROLLBACK")
+    tables = {r[0] for r in con.execute("SHOW TABLES").fetchall()}
+    assert "beat_pattern" not in tables
+
+
+def test_empty_wave_event_writes_an_empty_table():
+    con = duckdb.connect()
+    ensure_schema(con)
+    assert classify_registry(con) == 0
+    assert con.execute("SELECT count(*) FROM beat_pattern").fetchall() == [(0,)]
+
+
+def test_worker_processes_give_the_same_rows(strips, monkeypatch):
+    import cohort.phenotype.beats_batch as batch
+
+    con = _registry(strips)
+    classify_registry(con)
+    serial = con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall()
+    monkeypatch.setattr(batch, "_MIN_PARALLEL", 1)
+    classify_registry(con, workers=2)
+    assert con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall() == serial
