@@ -63,6 +63,19 @@ def run(args: argparse.Namespace) -> int:
     print("\nTop quarantine reasons (injected faults, caught):")
     print(text_table(status.quarantine_reasons.head(8)[["table", "field", "reason", "n"]]))
     print(f"Row counts reconcile: {'yes' if status.reconciles else 'NO'} ({time.perf_counter() - started:.1f} s)")
+
+    started = _step("3. Phenotyping every ECG with rule sets default-v1 and pr220-v1 (sensitivity)")
+    from cohort.phenotype import run_phenotype
+
+    for rules_id in ("default-v1", "pr220-v1"):
+        with progress_bar(None, f"phenotype {rules_id}", unit="step") as bar:
+            summary = run_phenotype(con, rules_id, progress=bar, beats=rules_id == "default-v1")
+        av = summary["av_category"]
+        print(f"{rules_id}: {summary['n_ecg']:,} ECGs; first-degree AV block {av.get('first_degree', 0):,}, "
+              f"higher-grade (Mobitz II, 2:1, high-grade, third degree) "
+              f"{sum(av.get(k, 0) for k in ('mobitz_ii', 'two_to_one', 'high_grade', 'third_degree')):,}; "
+              f"unrecognised statements {summary['n_unrecognised_statements']:,}")
+    print(f"({time.perf_counter() - started:.1f} s; explain any ECG with: dromos explain --db {db} --ecg KEY)")
     con.close()
 
     print(f"\nRegistry: {db}\nExports:  {exports}\nNext: dromos status --db {db}")
