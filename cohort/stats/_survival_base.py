@@ -166,6 +166,21 @@ def check_nonempty(n: int, *, caller: str) -> None:
         raise DataError(f"{caller}: the frame has no rows; check the filters that built it")
 
 
+def curve_inputs(frame: Any, *, duration: str, event: str, entry: str | None, weights: str | None,
+                 group: str | None, caller: str):
+    """Validated inputs of a curve estimator: (columns, times, event codes, entry, weights)."""
+    cols = extract(frame, [duration, event, entry, weights, group], caller=caller)
+    t = as_float(cols[duration], duration, caller=caller)
+    check_nonempty(t.size, caller=caller)
+    codes = event_codes(cols[event], event, caller=caller)
+    e = as_float(cols[entry], entry, caller=caller, allow_inf=True) if entry else None
+    check_times(t, e, caller=caller, duration_name=duration, entry_name=entry)
+    w = as_float(cols[weights], weights, caller=caller) if weights else None
+    if w is not None:
+        check_weights(w, weights, caller=caller)
+    return cols, t, codes, e, w
+
+
 def check_setting(value: Any, allowed: Sequence[Any], name: str, *, caller: str) -> None:
     """Constructor settings restricted to a fixed set raise ValueError early."""
     if value not in allowed:

@@ -122,15 +122,9 @@ class AalenJohansen:
             weights: str | None = None, group: str | None = None) -> AalenJohansen:
         """Estimate every cause's cumulative incidence per group; returns self."""
         caller = "AalenJohansen.fit"
-        cols = base.extract(frame, [duration, event, entry, weights, group], caller=caller)
-        t = base.as_float(cols[duration], duration, caller=caller)
-        base.check_nonempty(t.size, caller=caller)
-        codes = base.event_codes(cols[event], event, caller=caller)
-        e = base.as_float(cols[entry], entry, caller=caller, allow_inf=True) if entry else None
-        base.check_times(t, e, caller=caller, duration_name=duration, entry_name=entry)
-        w = base.as_float(cols[weights], weights, caller=caller) if weights else None
-        if w is not None:
-            base.check_weights(w, weights, caller=caller)
+        cols, t, codes, e, w = base.curve_inputs(
+            frame, duration=duration, event=event, entry=entry, weights=weights, group=group, caller=caller
+        )
         n_causes = int(codes.max())
         if n_causes == 0:
             raise DataError(f"{caller}: column '{event}' has no events (all codes are 0); "
