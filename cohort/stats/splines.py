@@ -14,6 +14,7 @@ which keeps the columns on the scale of x). Default knots sit at Harrell's quant
 from __future__ import annotations
 
 from collections.abc import Sequence
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -22,15 +23,20 @@ import pandas as pd
 from cohort.errors import DataError
 from cohort.stats import _survival_base as base
 
-# Harrell (2015) Regression Modeling Strategies, Table 2.3 (recalled from memory; the same
-# quantiles as Hmisc rcspline.eval): knot quantiles by number of knots.
-HARRELL_QUANTILES: dict[int, tuple[float, ...]] = {
-    3: (0.10, 0.50, 0.90),
-    4: (0.05, 0.35, 0.65, 0.95),
-    5: (0.05, 0.275, 0.50, 0.725, 0.95),
-    6: (0.05, 0.23, 0.41, 0.59, 0.77, 0.95),
-    7: (0.025, 0.1833, 0.3417, 0.50, 0.6583, 0.8167, 0.975),
-}
+_KNOT_TABLE = Path(__file__).resolve().parent / "data" / "harrell_knot_quantiles.csv"
+
+
+def _knot_quantiles() -> dict[int, tuple[float, ...]]:
+    """Harrell's knot quantiles by number of knots, from the data file (source cited there)."""
+    rows = [line for line in _KNOT_TABLE.read_text(encoding="utf-8").splitlines() if line and not line.startswith("#")]
+    table = {}
+    for line in rows[1:]:
+        n, quantiles = line.split(",")
+        table[int(n)] = tuple(float(q) for q in quantiles.split())
+    return table
+
+
+HARRELL_QUANTILES: dict[int, tuple[float, ...]] = _knot_quantiles()
 CURVE_COLUMNS = ("value", "log_hr", "se", "hr", "lower", "upper")
 
 
