@@ -1,0 +1,25 @@
+"""Study layer: study specs (TOML), cohort frames, analysis kinds and runs.
+
+``load_spec(path)`` validates a spec; ``build_cohort(con, spec, variant)`` returns the study
+frames of one variant; ``run_spec(spec, db, out_dir)`` runs every analysis of every variant
+and writes the tables. New analysis kinds are added with ``register_kind``.
+"""
+
+from cohort.study.analyses import ANALYSIS_KINDS, AnalysisContext, AnalysisKind, register_kind
+from cohort.study.builder import StudyFrames, build_cohort
+from cohort.study.run import RunResult, run_spec
+from cohort.study.spec import Spec, load_spec, parse_spec
+
+__all__ = [
+    "ANALYSIS_KINDS",
+    "AnalysisContext",
+    "AnalysisKind",
+    "RunResult",
+    "Spec",
+    "StudyFrames",
+    "build_cohort",
+    "load_spec",
+    "parse_spec",
+    "register_kind",
+    "run_spec",
+]
