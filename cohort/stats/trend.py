@@ -169,6 +169,11 @@ def proportion_trend(
     t = yr - yr.mean()
     fit = _fit_poisson if method == "poisson" else _fit_log_binomial
     slope, se = fit(t, xs, ns)
+    if not np.isfinite(se) or se <= 0:
+        raise DataError(
+            "proportion_trend: the trend's standard error is zero or undefined (the proportion is "
+            "0 or 1 in every year, or the years carry no information); no trend can be estimated"
+        )
     z = float(stats.norm.ppf(1.0 - alpha / 2.0))
     return TrendEstimate(
         apc=100.0 * float(np.expm1(slope)),

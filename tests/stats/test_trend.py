@@ -139,3 +139,15 @@ def test_interval_coverage_on_many_seeds() -> None:
         res = proportion_trend(YEARS, x, n)
         hits += res.lower < 4.0 < res.upper
     assert 0.91 <= hits / 400 <= 0.99
+
+
+def test_constant_certain_proportion_is_a_clear_error():
+    # A proportion of 1 in every year carries no trend information (zero standard error).
+    import warnings
+
+    from cohort.errors import DataError
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(DataError, match="no trend can be estimated"):
+            proportion_trend([2010, 2011, 2012], [10, 10, 10], [10, 10, 10])
