@@ -45,6 +45,7 @@ class Lexicon:
     texts: dict[str, np.ndarray]
     keys: dict[str, np.ndarray]
     snomed: tuple[str, ...]
+    means: tuple[tuple[str, ...], ...]  # what each concept asserts (statements.toml `means`)
 
 
 @dataclass(frozen=True)
@@ -118,6 +119,7 @@ def _load_lexicon(path: Path) -> Lexicon:
         texts=texts,
         keys=keys,
         snomed=tuple(str(raw[c].get("snomed", "")) for c in concepts),
+        means=tuple(tuple(str(m) for m in raw[c].get("means", ())) for c in concepts),
     )
 
 

@@ -14,6 +14,7 @@ import numpy as np
 from cohort.vocabulary import AV_CATEGORIES, RHYTHM_CLASSES
 from synthetic_registry.config import Config
 from synthetic_registry.population import DEVICES, HG_TYPES, VC, YEAR, Persons
+from synthetic_registry.sampling import truncated_normal
 
 RHYTHM_CODES: tuple[str, ...] = tuple(RHYTHM_CLASSES)
 AV_CODES: tuple[str, ...] = tuple(AV_CATEGORIES)
@@ -288,7 +289,7 @@ def _av_states(
         [
             pr < v("pr", "short_pr_ms"),
             pr <= v("pr", "first_degree_threshold_ms"),
-            pr <= v("pr", "marked_first_degree_ms"),
+            pr < v("pr", "marked_first_degree_ms"),  # marked from 300 ms inclusive, as default-v1
         ],
         [AV["short_pr"], AV["normal_pr"], AV["first_degree"]],
         AV["marked_first_degree"],
@@ -312,10 +313,14 @@ def _av_states(
 
 
 def draw(rng: np.random.Generator, spec: list, n: int) -> np.ndarray:
-    """Draws from a parameter spec ["uniform", lo, hi] or ["normal", mean, sd, lo, hi]."""
+    """Draws from a parameter spec ["uniform", lo, hi] or ["normal", mean, sd, lo, hi].
+
+    The normal is truncated to [lo, hi], not clipped: clipping would put an atom of draws
+    exactly on the limit, which is a diagnostic threshold for QRS duration and axis.
+    """
     if spec[0] == "uniform":
         return rng.uniform(spec[1], spec[2], n)
-    return np.clip(rng.normal(spec[1], spec[2], n), spec[3], spec[4])
+    return truncated_normal(rng, spec[1], spec[2], spec[3], spec[4], n)
 
 
 def choose(rng: np.random.Generator, table: dict[str, float], n: int) -> np.ndarray:
@@ -440,8 +445,10 @@ def _qrs_and_axis(
     a = {k: x["value"] for k, x in cfg.params["measurement"]["qrs_axis"].items()}
     male = p.male[tr.person]
     qm, qsd = cfg.value("measurement", "qrs_normal")
-    normal_q = np.clip(
-        rng.normal(qm + cfg.value("measurement", "qrs_male_excess") * male, qsd), *q["normal_clip"]
+    # Truncated, not clipped: a clipped draw piles about a tenth of men onto the upper limit,
+    # 1-2 ms below the nonspecific IVCD threshold (QRS > 110 ms, Surawicz 2009).
+    normal_q = truncated_normal(
+        rng, qm + cfg.value("measurement", "qrs_male_excess") * male, qsd, *q["normal_clip"], n
     )
     narrow_q = draw(rng, q["narrow_fascicular"], n)
     draws = {"normal": normal_q, "lafb": narrow_q, "lpfb": narrow_q}
@@ -457,8 +464,10 @@ def _qrs_and_axis(
         draws[cat] = draw(rng, q[cat], n)
     draws["not_assessable"] = draw(rng, q["ventricular_escape"], n)
     qrs = np.select([vc_name == k for k in draws], list(draws.values()), normal_q)
-    person_axis = np.clip(
-        p.axis0[tr.person] + rng.normal(0.0, a["person_sd"], n), *a["normal_clip"]
+    # The person's latent axis lies inside the normal range (population.py); the tracing's
+    # axis varies around it, truncated to the same range so no tracing sits on the LPFB limit.
+    person_axis = truncated_normal(
+        rng, p.axis0[tr.person], a["person_sd"], *a["normal_clip"], n
     )
     lafb_axis = draw(rng, a["lafb"], n)
     lpfb_axis = draw(rng, a["lpfb"], n)

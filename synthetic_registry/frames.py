@@ -222,6 +222,15 @@ def _names(codes: tuple[str, ...], idx: np.ndarray) -> pl.Series:
     return pl.Series(arr.tolist(), dtype=pl.String).replace("", None)
 
 
+def _slot_names(cfg: Config, slots: np.ndarray) -> pl.Series:
+    """Concept names of a read's filled statement slots, in slot order, joined by ";"."""
+    cols = [_names(cfg.lexicon.concepts, slots[:, j]).alias(f"s{j}") for j in range(slots.shape[1])]
+    joined = pl.DataFrame(cols).select(
+        pl.concat_str(pl.all(), separator=";", ignore_nulls=True).alias("s")
+    )["s"]
+    return joined.replace("", None)
+
+
 def persons_truth_frame(
     cfg: Config, p: Persons, pids: pl.Series, n_tracings: np.ndarray
 ) -> pl.DataFrame:
@@ -302,6 +311,10 @@ def ecg_truth_frame(
             "true_vent_rate": tr.vent_rate,
             "has_confirmed": reads.has_confirmed,
             "machine_av_statement": _names(cfg.lexicon.concepts, reads.machine_av_concept),
+            "machine_statements": _slot_names(cfg, reads.machine.slots),
+            "confirmed_statements": _slot_names(cfg, reads.confirmed.slots).zip_with(
+                pl.Series(reads.has_confirmed), pl.Series([None], dtype=pl.String)
+            ),
             "beat_pattern": pl.Series(strips.pattern.tolist(), dtype=pl.String).replace("", None),
             "strip_ratio": pl.Series(strips.ratio.tolist(), dtype=pl.String).replace("", None),
             "strip_artefacts": pl.Series(strips.artefacts.tolist(), dtype=pl.String).replace(

@@ -13,6 +13,7 @@ import numpy as np
 
 from cohort.vocabulary import VENTRICULAR_CONDUCTION
 from synthetic_registry.config import Config
+from synthetic_registry.sampling import truncated_normal
 
 YEAR = 365.25
 VC_CODES: tuple[str, ...] = tuple(VENTRICULAR_CONDUCTION)
@@ -188,10 +189,17 @@ def _latent_pr(
 
 
 def _person_axis(cfg: Config, rng: np.random.Generator, age0: np.ndarray) -> np.ndarray:
-    """A person's frontal QRS axis with normal conduction (degrees), leftward with age."""
+    """A person's frontal QRS axis with normal conduction (degrees), leftward with age.
+
+    Truncated to the normal range of [measurement.qrs_axis] normal_clip: an axis beyond +90
+    with a narrow QRS meets the LPFB criteria (Surawicz 2009), so a person of category
+    "normal" cannot have one. Clipping instead would leave about one person in ten a degree
+    below +90, read as LPFB on half of their tracings once measurement noise is added.
+    """
     mean, sd = cfg.value("measurement", "qrs_axis_normal")
     slope = cfg.value("measurement", "qrs_axis_age_slope")
-    return rng.normal(mean + slope * (age0 - 50.0), sd)
+    lo, hi = cfg.params["measurement"]["qrs_axis"]["normal_clip"]["value"]
+    return truncated_normal(rng, mean + slope * (age0 - 50.0), sd, lo, hi, age0.size)
 
 
 def _baseline_vc(

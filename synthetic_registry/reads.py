@@ -431,7 +431,9 @@ def _axis_slot(cfg: Config, c: _Concepts, axis: np.ndarray, slots: np.ndarray) -
     ) | np.isin(slots[:, S["vc_b"]], c.ids(("lafb", "lpfb")))
     paced = np.isin(slots[:, S["rhythm"]], c.ids(("paced_v", "paced_av", "wide_qrs_rhythm")))
     lad = (axis < k["lad_axis_deg"]) & (axis >= k["lafb_axis"][0])
-    rad = (axis > k["rad_axis_deg"]) & (axis <= k["lpfb_axis"][1])
+    # From +90 inclusive: the LPFB axis range (+90 to +180) starts there, so an axis of
+    # exactly +90 is not left unexplained by the machine's statements.
+    rad = (axis >= k["rad_axis_deg"]) & (axis <= k["lpfb_axis"][1])
     free = ~explained & ~paced
     slots[:, S["axis"]] = np.select([free & lad, free & rad], [c["lad"], c["rad"]], NONE)
 
@@ -630,7 +632,7 @@ def _confirmed_slots(
     normal_vc = tr.vc == VC["normal"]
     lad, rad = cfg.value("criteria", "lad_axis_deg"), cfg.value("criteria", "rad_axis_deg")
     slots[:, S["axis"]] = np.select(
-        [normal_vc & (tr.qrs_axis < lad), normal_vc & (tr.qrs_axis > rad)],
+        [normal_vc & (tr.qrs_axis < lad), normal_vc & (tr.qrs_axis >= rad)],
         [c["lad"], c["rad"]],
         NONE,
     )

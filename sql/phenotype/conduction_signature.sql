@@ -133,8 +133,8 @@ vc_inputs AS (
     SELECT
         d.*,
         coalesce(d.rhythm_finding = 'paced_ventricular', false) AS ventricular_paced,
-        d.adult AND NOT d.ctx_preexcitation
-            AND coalesce(d.rhythm_finding NOT IN ('paced_ventricular', 'ventricular'), true)
+        d.adult AND NOT d.ctx_preexcitation AND NOT coalesce(d.ventricular_rhythm, false)
+            AND coalesce(d.rhythm_finding <> 'paced_ventricular', true)
             AS measurement_ok,
         d.s_rbbb OR d.s_lbbb OR d.s_incomplete_rbbb OR d.s_incomplete_lbbb OR d.s_bifascicular
             OR d.s_ivcd OR d.s_bbb_unspecified AS bundle_stmt,
@@ -322,7 +322,7 @@ evidenced AS (
                     CASE
                         WHEN NOT c.adult THEN 'not_assessable:pediatric_qrs_criteria'
                         WHEN c.ctx_preexcitation THEN 'not_assessable:preexcitation'
-                        WHEN c.rhythm_finding = 'ventricular' THEN 'not_assessable:ventricular_rhythm'
+                        WHEN c.ventricular_rhythm THEN 'not_assessable:ventricular_rhythm'
                         ELSE 'not_assessable:qrs_missing'
                     END END,
                 CASE WHEN c.s_rbbb AND NOT c.qrs_complete

@@ -61,6 +61,9 @@ agg AS (
         arg_min(category, rank) FILTER (WHERE axis = 'rhythm' AND effective) AS rhythm_stmt,
         arg_min(name, rank) FILTER (WHERE axis = 'rhythm' AND effective) AS rhythm_finding,
         coalesce(bool_or(axis = 'rhythm' AND is_uncertain), false) AS rhythm_uncertain,
+        -- An escape or idioventricular rhythm stated beside an atrial rhythm: the QRS comes
+        -- from a ventricular focus, whatever rhythm class the rank gives the read.
+        coalesce(bool_or(finding = 'rhythm:ventricular' AND effective), false) AS ventricular_rhythm,
         coalesce(bool_or(na_rhythm AND is_uncertain AND NOT negated AND NOT effective), false)
             AS uncertain_na_rhythm,
         arg_min(category, rank) FILTER (WHERE axis = 'av' AND effective AND category IS NOT NULL)
@@ -111,6 +114,7 @@ SELECT
     k.n_reads,
     a.rhythm_stmt,
     a.rhythm_finding,
+    coalesce(a.ventricular_rhythm, false) AS ventricular_rhythm,
     coalesce(list_contains(p.pr_not_assessable, a.rhythm_stmt), false) AS rhythm_pr_na,
     coalesce(a.rhythm_uncertain, false) AS rhythm_uncertain,
     coalesce(a.uncertain_na_rhythm, false) AS uncertain_na_rhythm,

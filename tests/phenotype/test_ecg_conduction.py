@@ -165,6 +165,25 @@ def test_paced_rhythm_gives_paced_ventricular_conduction(reg):
     assert not row["nonspecific_ivcd"]
 
 
+def test_ventricular_escape_beside_sinus_is_sinus_rhythm_with_unassessable_qrs(reg):
+    # Found by benchmarks/validate_phenotype.py (confirmed reads of third-degree block with a
+    # ventricular escape were rhythm "other"). In complete heart block the atria keep their own
+    # (sinus) rhythm and the wide escape QRS says nothing about bundle-branch conduction
+    # (common practice, no source): rhythm sinus, AV third degree, QRS not assessable.
+    row = one_ecg(reg, pr=None, vr=35, ar=75, qrs=150, axis=20,
+                  statements=["Sinus rhythm", "Complete heart block", "Ventricular escape rhythm"])
+    assert row["rhythm_class"] == "sinus" and row["av_category"] == "third_degree"
+    assert row["ventricular_conduction"] == "not_assessable"
+    assert "not_assessable:ventricular_rhythm" in row["evidence"]
+    assert not row["nonspecific_ivcd"]
+
+
+def test_idioventricular_rhythm_alone_is_other_rhythm(reg):
+    row = one_ecg(reg, pr=None, vr=38, ar=None, qrs=160, statements=["Idioventricular rhythm"])
+    assert row["rhythm_class"] == "other"
+    assert row["ventricular_conduction"] == "not_assessable"
+
+
 def test_missing_pr_is_not_assessable(reg):
     row = one_ecg(reg, pr=None, statements=["Sinus rhythm"])
     assert row["av_category"] == "not_assessable"

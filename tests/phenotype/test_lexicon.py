@@ -205,6 +205,11 @@ CASES = [
     ("Sinus rhythm with junctional escape", {"rhythm:sinus"}),
     ("Complete heart block with idioventricular escape", {"av:third_degree", "rhythm:ventricular"}),
     ("LVH by voltage", set()),
+    # Physician wordings of the synthetic registry that were unrecognised until
+    # benchmarks/validate_phenotype.py listed them (common practice, no source).
+    ("Sinus tach", {"rhythm:sinus"}),
+    ("Sinus tach.", {"rhythm:sinus"}),
+    ("Slow junctional rhythm", {"rhythm:junctional"}),
 ]
 
 
