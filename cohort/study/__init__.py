@@ -10,6 +10,9 @@ from cohort.study.builder import StudyFrames, build_cohort
 from cohort.study.run import RunResult, run_spec
 from cohort.study.spec import Spec, load_spec, parse_spec
 
+# Registers the survival and competing-risks analysis kinds (kaplan_meier, cox, ...).
+from cohort.study import survival_kinds  # noqa: E402, F401  isort: skip
+
 __all__ = [
     "ANALYSIS_KINDS",
     "AnalysisContext",
