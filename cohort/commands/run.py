@@ -17,12 +17,22 @@ def register(subparsers) -> None:
             "Build the study cohort of a spec (docs/study-spec.md) from a phenotyped registry, "
             "run its analyses for the main analysis and every sensitivity variant, and write "
             "DIR/attrition.csv, DIR/exposure.csv and DIR/tables/*.csv (one 'variant' column, "
-            "variants side by side). Re-runs on the same inputs write identical files."
+            "variants side by side), then apply disclosure control to them and write "
+            "DIR/figures/ (SVG, PNG and the plotted rows), DIR/report.html and "
+            "DIR/manifest.json. Re-runs on the same inputs write identical tables."
         ),
     )
     parser.add_argument("spec", type=Path, metavar="SPEC", help="study spec (.toml)")
     parser.add_argument("--db", type=Path, help="registry file (.duckdb); required unless --check")
     parser.add_argument("--out", type=Path, metavar="DIR", help="output folder; required unless --check")
+    parser.add_argument("--suppress-below", type=int, metavar="N", default=None,
+                        help="disclosure control: withhold counts of 1 to N-1 persons or events, "
+                             "with complementary cells (default: 11)")
+    parser.add_argument("--no-disclosure-control", action="store_true",
+                        help="keep exact small counts (internal use only; the report says so "
+                             "on its first screen)")
+    parser.add_argument("--tables-only", action="store_true",
+                        help="write the tables only: no disclosure control, figures or report")
     parser.add_argument("--check", action="store_true",
                         help="only validate the spec (no registry access)")
     parser.set_defaults(func=run)
@@ -37,6 +47,9 @@ def run(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec)
     if not args.check and (args.db is None or args.out is None):
         raise UsageError("dromos run needs --db FILE and --out DIR (or --check to only validate)")
+    if args.suppress_below is not None and (args.no_disclosure_control or args.suppress_below < 2):
+        raise UsageError("--suppress-below needs a count of at least 2 and cannot be combined "
+                         "with --no-disclosure-control")
     if args.check:
         print(f"spec {args.spec} is valid: study {spec.id}, {len(spec.variants)} variant(s), "
               f"{len(spec.analyses)} analysis(es)")
@@ -50,6 +63,40 @@ def run(args: argparse.Namespace) -> int:
 
         result = run_spec(spec, args.db, args.out, progress=advance)
     print("\n".join(result.summary))
-    print(f"wrote {len(result.tables)} table(s), attrition.csv and run.json in {result.out_dir} "
-          f"({result.seconds:.1f} s)")
+    if args.tables_only:
+        print(f"wrote {len(result.tables)} table(s), attrition.csv and run.json in "
+              f"{result.out_dir} ({result.seconds:.1f} s); tables are NOT disclosure-controlled")
+        return 0
+    report = report_run(result, args.db, disclosure=not args.no_disclosure_control,
+                        threshold=args.suppress_below)
+    print(report_lines(result, report))
     return 0
+
+
+def report_run(result, db: Path, *, disclosure: bool, threshold: int | None):
+    """Disclosure control, figures, report.html and manifest.json of a finished run."""
+    from cohort.registry import connect
+    from cohort.report.build import write_report
+    from cohort.report.disclosure import DEFAULT_THRESHOLD
+
+    con = connect(db, create=False, read_only=True)
+    try:
+        return write_report(result, con=con, disclosure=disclosure,
+                            threshold=DEFAULT_THRESHOLD if threshold is None else threshold)
+    finally:
+        con.close()
+
+
+def report_lines(result, report) -> str:
+    """What the user reads after a run: where the report is and what was withheld."""
+    log = report.disclosure
+    control = (f"disclosure control: counts below {log.threshold} withheld "
+               f"({log.primary} small, {log.complementary} complementary cells)" if log.enabled
+               else "disclosure control OFF: internal use only")
+    return "\n".join([
+        f"wrote {len(result.tables)} table(s) and {len(report.figures)} figure(s) in "
+        f"{result.out_dir} ({result.seconds:.1f} s analysis)",
+        f"  {control}",
+        f"  report:   {report.report}",
+        f"  manifest: {report.manifest}",
+    ])

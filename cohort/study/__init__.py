@@ -12,6 +12,8 @@ from cohort.study.spec import Spec, load_spec, parse_spec
 
 # Registers the survival and competing-risks analysis kinds (kaplan_meier, cox, ...).
 from cohort.study import survival_kinds  # noqa: E402, F401  isort: skip
+# Registers the site quality kind (rates per site and period, funnel and u-chart data).
+from cohort.study import quality_kinds  # noqa: E402, F401  isort: skip
 
 __all__ = [
     "ANALYSIS_KINDS",

@@ -29,6 +29,7 @@ among persons still at risk then (``landmark`` ``events_at_landmark``).
 
 from __future__ import annotations
 
+import math
 import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -787,9 +788,12 @@ def _coefficient_summary(frames: dict[str, pl.DataFrame]) -> list[str]:
         return []
     lines = []
     for r in coef.filter(pl.col("term").str.starts_with("pr_per") | pl.col("term").str.starts_with("exposure[")).iter_rows(named=True):
-        if r["hr"] is None:
+        at = f" from landmark {r['landmark']:g}" if r.get("landmark") is not None else ""
+        if r["hr"] is None or not math.isfinite(r["hr"]):
+            lines.append(f"{r['endpoint']} ({r['model']}){at}: {r['term']} not estimable "
+                         f"({r['events'] or 0} events)")
             continue
-        lines.append(f"{r['endpoint']} ({r['model']}): {r['term']} HR {r['hr']:.3f} "
+        lines.append(f"{r['endpoint']} ({r['model']}){at}: {r['term']} HR {r['hr']:.3f} "
                      f"({r['lower']:.3f}-{r['upper']:.3f}), {r['events']} events")
     flagged = coef.filter(pl.col("ph_flag").fill_null(False))["term"].to_list()
     if flagged:
