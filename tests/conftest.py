@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -58,3 +59,25 @@ def persons_file(tmp_path):
             ["P3", "1975-01-15", "F", "Larkspur Clinic", "", "2024-12-31"],
         ],
     )
+
+
+@pytest.fixture(scope="session")
+def synthetic_db(tmp_path_factory) -> dict[str, Any]:
+    """A small synthetic registry (2,500 persons, seed 11), ingested and phenotyped with the
+    rule sets the shipped specs use; returns paths of the registry and the exports."""
+    from cohort.ingest import ingest
+    from cohort.phenotype import run_phenotype
+    from synthetic_registry import generate
+
+    root = tmp_path_factory.mktemp("synthetic_registry")
+    exports = root / "exports"
+    generate(exports, persons=2500, seed=11)
+    db = root / "registry.duckdb"
+    con = connect(db)
+    try:
+        ingest(con, [exports])
+        for rules in ("default-v1", "pr220-v1"):
+            run_phenotype(con, rules)
+    finally:
+        con.close()
+    return {"db": db, "exports": exports, "root": root}

@@ -78,5 +78,35 @@ def run(args: argparse.Namespace) -> int:
     print(f"({time.perf_counter() - started:.1f} s; explain any ECG with: dromos explain --db {db} --ecg KEY)")
     con.close()
 
-    print(f"\nRegistry: {db}\nExports:  {exports}\nNext: dromos status --db {db}")
+    reports = _run_studies(db, args.out / "studies")
+    print(f"\nRegistry: {db}\nExports:  {exports}\nReports (open in a browser):")
+    for name, path in reports.items():
+        print(f"  {name:<13} {path}")
+    print(f"Next: dromos status --db {db}; dromos run SPEC --db {db} --out DIR")
     return 0 if status.reconciles else 1
+
+
+def _run_studies(db: Path, out: Path) -> dict[str, Path]:
+    """Run every shipped study spec on the registry; report path per spec."""
+    from cohort.commands.run import report_lines, report_run
+    from cohort.study.run import run_spec
+    from cohort.study.shipped import shipped_specs
+    from cohort.study.spec import load_spec
+
+    specs = shipped_specs()
+    started = _step(f"4. Running the {len(specs)} shipped study specs ({', '.join(specs)})")
+    reports: dict[str, Path] = {}
+    for name, path in specs.items():
+        spec = load_spec(path)
+        with progress_bar(len(spec.variants) * (1 + len(spec.analyses)), f"run {name}", unit="step") as bar:
+            def advance(step: str, done: int, total: int, name: str = name) -> None:
+                bar.set_description(f"{name}: {step}")
+                bar.n = done
+                bar.refresh()
+
+            result = run_spec(spec, db, out / name, progress=advance)
+        report = report_run(result, db, disclosure=True, threshold=None)
+        print(f"{spec.title}\n{report_lines(result, report)}")
+        reports[name] = report.report
+    print(f"({time.perf_counter() - started:.1f} s)")
+    return reports

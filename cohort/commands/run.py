@@ -22,7 +22,9 @@ def register(subparsers) -> None:
             "DIR/manifest.json. Re-runs on the same inputs write identical tables."
         ),
     )
-    parser.add_argument("spec", type=Path, metavar="SPEC", help="study spec (.toml)")
+    parser.add_argument("spec", metavar="SPEC",
+                        help="study spec: a .toml file, or the name of a shipped spec "
+                             "(prevalence, incidence, progression, pacemaker, site_quality)")
     parser.add_argument("--db", type=Path, help="registry file (.duckdb); required unless --check")
     parser.add_argument("--out", type=Path, metavar="DIR", help="output folder; required unless --check")
     parser.add_argument("--suppress-below", type=int, metavar="N", default=None,
@@ -42,16 +44,18 @@ def run(args: argparse.Namespace) -> int:
     """Validate, run and summarize; 0 on success (errors are DromosError: exit code 2)."""
     from cohort.errors import SpecError as UsageError
     from cohort.study.run import run_spec
+    from cohort.study.shipped import resolve_spec
     from cohort.study.spec import load_spec
 
-    spec = load_spec(args.spec)
+    spec_path = resolve_spec(args.spec)
+    spec = load_spec(spec_path)
     if not args.check and (args.db is None or args.out is None):
         raise UsageError("dromos run needs --db FILE and --out DIR (or --check to only validate)")
     if args.suppress_below is not None and (args.no_disclosure_control or args.suppress_below < 2):
         raise UsageError("--suppress-below needs a count of at least 2 and cannot be combined "
                          "with --no-disclosure-control")
     if args.check:
-        print(f"spec {args.spec} is valid: study {spec.id}, {len(spec.variants)} variant(s), "
+        print(f"spec {spec_path} is valid: study {spec.id}, {len(spec.variants)} variant(s), "
               f"{len(spec.analyses)} analysis(es)")
         return 0
     total = len(spec.variants) * (1 + len(spec.analyses))

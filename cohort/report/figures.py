@@ -95,6 +95,12 @@ def _ordered(values: Sequence[str]) -> list[str]:
     return list(dict.fromkeys(values))
 
 
+def _legend(ax: Axes, **options: Any) -> None:
+    """A legend when anything labelled was drawn (all rows withheld leaves nothing to name)."""
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(**options)
+
+
 def _percent(ax: Axes, axis: str = "y", digits: int | None = None) -> None:
     def fmt(x: float, _pos: int) -> str:
         d = digits if digits is not None else (0 if abs(x) >= 10 or x == 0 else 1)
@@ -141,7 +147,7 @@ def plot_curves(curves: pl.DataFrame, *, start: float = 0.0, scale: float = 100.
     if start == 0.0:
         ax.set_ylim(bottom=0)
     if len(order) > 1 or order[:1] != [""]:
-        ax.legend(loc="upper left" if start == 0.0 else "lower left", fontsize=_F["font_size"] - 0.5)
+        _legend(ax, loc="upper left" if start == 0.0 else "lower left", fontsize=_F["font_size"] - 0.5)
     if at_risk is not None and at_risk.height:
         add_numbers_at_risk(ax, at_risk, order, colours)
     return ax
@@ -210,7 +216,7 @@ def plot_prevalence_by_age_sex(data: pl.DataFrame, ax: Axes | None = None,
     ax.set_ylabel("Prevalence")
     _percent(ax)
     ax.set_ylim(bottom=0)
-    ax.legend(loc="upper left")
+    _legend(ax, loc="upper left")
     if title:
         ax.set_title(title)
     return ax
@@ -247,7 +253,7 @@ def plot_crude_vs_standardized(data: pl.DataFrame, ax: Axes | None = None) -> Ax
     ax.set_xlabel("Prevalence")
     _percent(ax, "x")
     ax.set_xlim(left=0)
-    ax.legend(loc="lower right", fontsize=_F["font_size"] - 0.5)
+    _legend(ax, loc="lower right", fontsize=_F["font_size"] - 0.5)
     return ax
 
 
@@ -310,8 +316,7 @@ def plot_forest(data: pl.DataFrame, ax: Axes | None = None, xlabel: str = "Hazar
         ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
     ax.set_xlabel(xlabel + (" (log scale)" if log else ""))
     ax.grid(axis="y", visible=False)
-    if any(groups):
-        ax.legend(loc="lower right", fontsize=_F["font_size"] - 0.5)
+    _legend(ax, loc="lower right", fontsize=_F["font_size"] - 0.5)
     return ax
 
 
@@ -339,7 +344,7 @@ def plot_state_occupation(data: pl.DataFrame, ax: Axes | None = None,
     _percent(ax)
     ax.set_xlim(left=0)
     ax.set_ylim(0, 100)
-    ax.legend(loc="center right", fontsize=_F["font_size"] - 0.5)
+    _legend(ax, loc="center right", fontsize=_F["font_size"] - 0.5)
     return ax
 
 
@@ -377,7 +382,7 @@ def plot_funnel(units: pl.DataFrame, curve: pl.DataFrame, ax: Axes | None = None
     ax.set_xlabel("Person-years at risk in the reporting period")
     ax.set_ylabel(ylabel)
     ax.set_ylim(bottom=0)
-    ax.legend(loc="upper right", fontsize=_F["font_size"] - 1)
+    _legend(ax, loc="upper right", fontsize=_F["font_size"] - 1)
     return ax
 
 
@@ -404,7 +409,7 @@ def plot_u_chart(data: pl.DataFrame, ax: Axes | None = None,
     ax.set_xlabel("Calendar period")
     ax.set_ylabel(ylabel)
     ax.set_ylim(bottom=0)
-    ax.legend(loc="upper left", ncols=4, fontsize=_F["font_size"] - 1)
+    _legend(ax, loc="upper left", ncols=4, fontsize=_F["font_size"] - 1)
     return ax
 
 

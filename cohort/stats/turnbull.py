@@ -61,14 +61,25 @@ def _em_step(p: np.ndarray, a: np.ndarray, b: np.ndarray, w: np.ndarray, total: 
     return new / new.sum()
 
 
+def _pool_ranges(a: np.ndarray, b: np.ndarray, w: np.ndarray, m: int
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Distinct (a, b) index ranges with the summed weight of the observations on each."""
+    key = a.astype(np.int64) * (m + 1) + b
+    distinct, inverse = np.unique(key, return_inverse=True)
+    return distinct // (m + 1), distinct % (m + 1), np.bincount(inverse, weights=w)
+
+
 def self_consistency(a: np.ndarray, b: np.ndarray, w: np.ndarray, m: int, tol: float,
                      max_iter: int) -> tuple[np.ndarray, int, bool]:
     """EM on the innermost-interval masses, accelerated by SQUAREM.
 
     Varadhan R & Roland C (2008) Scand J Stat 35:335-353: two EM steps give an extrapolated
     point, kept only if it does not lower the likelihood (the plain EM step is the fallback),
-    so the iteration stays monotone. Stops when max |change| of a mass < tol.
+    so the iteration stays monotone. Stops when max |change| of a mass < tol. Observations
+    covering the same innermost intervals are pooled first (their weights summed): the
+    likelihood depends on them only through that sum, and each step then costs O(pairs + m).
     """
+    a, b, w = _pool_ranges(a, b, w, m)
     p = np.full(m, 1.0 / m)
     total = w.sum()
     for it in range(1, max_iter + 1):
@@ -81,9 +92,12 @@ def self_consistency(a: np.ndarray, b: np.ndarray, w: np.ndarray, m: int, tol: f
             step = -np.sqrt(r @ r) / nv
             trial = np.maximum(p - 2 * step * r + step**2 * v, 0.0)
             if trial.sum() > 0:
-                trial = _em_step(trial / trial.sum(), a, b, w, total)
-                if log_likelihood(trial, a, b, w) >= log_likelihood(p2, a, b, w):
-                    new = trial
+                # An extrapolation can empty an interval some observation needs: its
+                # likelihood is then -inf or NaN and the plain EM step is kept.
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    trial = _em_step(trial / trial.sum(), a, b, w, total)
+                    if log_likelihood(trial, a, b, w) >= log_likelihood(p2, a, b, w):
+                        new = trial
         if np.max(np.abs(new - p)) < tol:
             return new, it, True
         p = new

@@ -7,12 +7,11 @@ from __future__ import annotations
 
 import textwrap
 from pathlib import Path
-from typing import Any
 
 import duckdb
 import pytest
 
-from cohort.registry import connect, ensure_schema
+from cohort.registry import ensure_schema
 from cohort.study import build_cohort, parse_spec
 
 _ECG_COLUMNS = (
@@ -94,25 +93,3 @@ def build(con, body: str, analyses: str | None = None, variant: str = "main"):
     """Parse a spec made of ``body`` and build its frames on ``con``."""
     spec = parse_spec(spec_text(body, analyses), Path("test.toml"))
     return build_cohort(con, spec, variant)
-
-
-@pytest.fixture(scope="session")
-def synthetic_db(tmp_path_factory) -> dict[str, Any]:
-    """A small synthetic registry (2,500 persons, seed 11), ingested and phenotyped with the
-    rule sets the shipped specs use; returns paths of the registry and the exports."""
-    from cohort.ingest import ingest
-    from cohort.phenotype import run_phenotype
-    from synthetic_registry import generate
-
-    root = tmp_path_factory.mktemp("study_synth")
-    exports = root / "exports"
-    generate(exports, persons=2500, seed=11)
-    db = root / "registry.duckdb"
-    con = connect(db)
-    try:
-        ingest(con, [exports])
-        for rules in ("default-v1", "pr220-v1"):
-            run_phenotype(con, rules)
-    finally:
-        con.close()
-    return {"db": db, "exports": exports, "root": root}
