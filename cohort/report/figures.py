@@ -27,7 +27,7 @@ import numpy as np
 import polars as pl
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
-from matplotlib.ticker import FuncFormatter
+from matplotlib.ticker import FuncFormatter, PercentFormatter
 
 from cohort.report.tables import num, withheld
 
@@ -102,10 +102,10 @@ def _legend(ax: Axes, **options: Any) -> None:
 
 
 def _percent(ax: Axes, axis: str = "y", digits: int | None = None) -> None:
-    def fmt(x: float, _pos: int) -> str:
-        d = digits if digits is not None else (0 if abs(x) >= 10 or x == 0 else 1)
-        return f"{x:.{d}f}%"
-    (ax.yaxis if axis == "y" else ax.xaxis).set_major_formatter(FuncFormatter(fmt))
+    """Percent tick labels (values already in percent); decimals follow the axis range
+    unless ``digits`` is given, so 0.02% steps are not all printed as 0.0%."""
+    (ax.yaxis if axis == "y" else ax.xaxis).set_major_formatter(
+        PercentFormatter(xmax=100, decimals=digits))
 
 
 # --------------------------------------------------------------------------- curves
@@ -130,7 +130,8 @@ def plot_curves(curves: pl.DataFrame, *, start: float = 0.0, scale: float = 100.
         keep = np.isfinite(t) & np.isfinite(y)
         x = np.concatenate([[0.0], t[keep]])
         yy = np.concatenate([[start], y[keep]]) * scale
-        ax.step(x, yy, where="post", color=colours[g], label=g)
+        label = g if keep.any() else f"{g} (withheld: too few events)"
+        ax.step(x, yy, where="post", color=colours[g], label=label)
         if band and "lower" in part.columns:
             lo, hi = num(part["lower"])[keep], num(part["upper"])[keep]
             ok = np.isfinite(lo) & np.isfinite(hi)
@@ -260,6 +261,13 @@ def plot_crude_vs_standardized(data: pl.DataFrame, ax: Axes | None = None) -> Ax
 # --------------------------------------------------------------------------- regression
 
 
+def _plain_log_labels(axis) -> None:
+    """Log-axis ticks as plain numbers (0.5, 2, 3), not powers of ten."""
+    plain = FuncFormatter(lambda v, _p: f"{v:g}")
+    axis.set_major_formatter(plain)
+    axis.set_minor_formatter(plain)
+
+
 def plot_hr_curve(data: pl.DataFrame, ax: Axes | None = None, xlabel: str = "PR interval (ms)") -> Axes:
     """Hazard ratio against PR (spline) with its pointwise band, log scale, HR 1 at the reference.
 
@@ -276,10 +284,10 @@ def plot_hr_curve(data: pl.DataFrame, ax: Axes | None = None, xlabel: str = "PR 
     if np.isfinite(ref).any():
         r = float(ref[np.isfinite(ref)][0])
         ax.axvline(r, color=_P["muted"], lw=0.9, ls=":")
-        ax.annotate(f"reference {r:g} ms", (r, 1.0), xytext=(4, 6), textcoords="offset points",
+        ax.annotate(f"reference {r:g} ms", (r, 1.0), xytext=(4, -12), textcoords="offset points",
                     color=_P["muted"], fontsize=_F["font_size"] - 1)
     ax.set_yscale("log")
-    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
+    _plain_log_labels(ax.yaxis)
     ax.set_xlabel(xlabel)
     ax.set_ylabel("Hazard ratio (log scale)")
     return ax
@@ -313,7 +321,7 @@ def plot_forest(data: pl.DataFrame, ax: Axes | None = None, xlabel: str = "Hazar
     ax.set_ylim(data.height - 0.5, -0.5)
     if log:
         ax.set_xscale("log")
-        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
+        _plain_log_labels(ax.xaxis)
     ax.set_xlabel(xlabel + (" (log scale)" if log else ""))
     ax.grid(axis="y", visible=False)
     _legend(ax, loc="lower right", fontsize=_F["font_size"] - 0.5)

@@ -91,8 +91,9 @@ def disclosure_html(log: DisclosureLog) -> str:
     if not log.enabled:
         return (f'<section class="status off" id="disclosure" role="alert"><h2>{esc(d["off_heading"])}</h2>'
                 f'<p>{esc(d["off_text"])}</p></section>')
+    audit = d["audit_exact"] if log.audit == "exact" else f"Audit: {log.audit}."
     text = d["on_text"].format(below=log.threshold - 1, marker=log.marker, primary=log.primary,
-                               complementary=log.complementary, audit=log.audit)
+                               complementary=log.complementary, audit=audit)
     notes = "".join(f"<li>{esc(n)}</li>" for n in log.notes)
     more = f'<ul class="small">{notes}</ul>' if notes else ""
     return (f'<section class="status" id="disclosure"><h2>{esc(d["on_heading"])}</h2>'

@@ -118,8 +118,8 @@ def _draw_prevalence_panels(rows: pl.DataFrame, axis: str, cats: list[str]) -> F
     nrows = (n + cols - 1) // cols
     with F.style():
         fig = Figure(figsize=(7.0, 2.7 * nrows + 0.4))
-        fig.subplots_adjust(left=0.09, right=0.98, top=1 - 0.45 / (2.7 * nrows + 0.4),
-                            bottom=0.55 / (2.7 * nrows + 0.4), hspace=0.55, wspace=0.22)
+        fig.subplots_adjust(left=0.11, right=0.98, top=1 - 0.45 / (2.7 * nrows + 0.4),
+                            bottom=0.55 / (2.7 * nrows + 0.4), hspace=0.55, wspace=0.3)
         for i, c in enumerate(cats):
             ax = fig.add_subplot(nrows, cols, i + 1)
             part = rows.filter(pl.col("category") == c)
