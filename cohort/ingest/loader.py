@@ -18,7 +18,7 @@ from pathlib import Path
 import duckdb
 
 from cohort import __version__
-from cohort.errors import InputFileError, MappingError
+from cohort.errors import InputFileError, MappingError, RegistryError
 from cohort.ingest import sources
 from cohort.ingest.mapping import INTERVAL_COLUMNS, LOAD_ORDER, Mapping, TableMapping, load_mapping
 from cohort.ingest.pseudonym import define_person_key_macro, key_check
@@ -116,17 +116,32 @@ def _stage(con, table: TableMapping, scanned: sources.ScanResult) -> None:
     }[table.table]
     local_sql, refs_sql = _STAGE_SQL[table.table]
     con.execute(read_sql(local_sql), params)
+    _expose_staged(con, scanned.positional)
     scanned.finish(con)
     con.execute(read_sql(refs_sql))
-    for row_k, line in scanned.miscounted:
-        problem = {"field": None, "raw_value": line, "reason": "malformed line (too many columns)"}
-        updated = con.execute(
-            "UPDATE stage_refs SET problems = list_append(problems, $p) WHERE row_k = $k RETURNING row_k",
-            {"p": problem, "k": row_k},
-        ).fetchall()
-        if not updated:
-            con.execute("INSERT INTO stage_refs VALUES ($k, [$p], NULL, NULL)", {"p": problem, "k": row_k})
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
+
+
+def _expose_staged(con, positional: bool) -> None:
+    """View ``stage_checked`` over ``stage_typed``; positional sources number rows 1, 2, ...
+
+    A CSV source has no row_k: staging kept file order (no hash join before its output), so
+    a row's storage position is its position among the parsed rows. The positions of a new
+    table are one contiguous run; that is checked, never assumed.
+    """
+    if not positional:
+        con.execute("CREATE OR REPLACE TEMP VIEW stage_checked AS SELECT * FROM stage_typed")
+        return
+    first, last, n = con.execute("SELECT min(rowid), max(rowid), count(*) FROM stage_typed").fetchone()
+    if n and last - first + 1 != n:
+        raise RegistryError(
+            f"internal error: the {n} staged rows do not sit in one run of positions "
+            f"({first}..{last}); nothing was loaded. Please report this"
+        )
+    con.execute(
+        "CREATE OR REPLACE TEMP VIEW stage_checked AS "
+        f"SELECT * REPLACE (rowid - {int(first or 0)} + 1 AS row_k) FROM stage_typed"
+    )
 
 
 def _write_outcomes(con, table: str, source_id: str, rejected: list) -> tuple[int, int, int, int]:
@@ -265,7 +280,7 @@ def _load_scanned(
 
 
 _TEMPORARIES = (
-    "stage_outcome", "stage_checked", "raw_arrow", "skip_offset", "dromos_rejects",
+    "stage_outcome", "stage_checked", "stage_typed", "raw_arrow", "skip_offset", "dromos_rejects",
     "dromos_reject_scans", "src", "raw_numbered", "raw_source", "target_rows",
 )
 

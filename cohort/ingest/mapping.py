@@ -126,6 +126,19 @@ def _string_list(value, where: str, path: Path) -> list[str]:
     return list(value)
 
 
+def _check_codes_distinct(codes: dict[str, list[str]], where: str, path: Path) -> None:
+    """A source value (compared case-insensitively) may stand for one code only."""
+    seen: dict[str, str] = {}
+    for code, values in codes.items():
+        for value in values:
+            earlier = seen.setdefault(value.lower(), code)
+            if earlier != code:
+                raise MappingError(
+                    f"{path}: [{where}] maps '{value}' to both '{earlier}' and '{code}'; "
+                    "give each source value one code"
+                )
+
+
 def _table_mapping(name: str, spec: dict, path: Path) -> TableMapping:
     if name not in CANONICAL_COLUMNS:
         raise MappingError(f"{path}: unknown table [table.{name}]{_nearest(name, set(CANONICAL_COLUMNS))}")
@@ -150,6 +163,7 @@ def _table_mapping(name: str, spec: dict, path: Path) -> TableMapping:
             if not isinstance(options[key], dict):
                 raise MappingError(f"{path}: [table.{name}.{key}] must be a table of lists")
             options[key] = {c: _string_list(v, f"table.{name}.{key}.{c}", path) for c, v in options[key].items()}
+            _check_codes_distinct(options[key], f"table.{name}.{key}", path)
     for column, unit in options.get("units", {}).items():
         if column not in INTERVAL_COLUMNS:
             raise MappingError(f"{path}: [table.{name}.units] {column} is not an interval column{_nearest(column, set(INTERVAL_COLUMNS))}")

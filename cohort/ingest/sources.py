@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -31,10 +32,8 @@ class ScanResult:
     """(record, field, raw line, reason) of lines the reader could not split into fields."""
     preset_rejects: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     """Lines a Python reader (FHIR) rejected itself, numbered as records already."""
-    csv_layout: tuple[Path, str, str, int] | None = None
-    """(path, delimiter, quote, number of columns) of a CSV source, for the field-count check."""
-    miscounted: list[tuple[int, str]] = field(default_factory=list)
-    """(row_k, raw line) of parsed rows whose line has one field too many (see finish)."""
+    positional: bool = False
+    """True when ``src`` has no row_k: a staged row's record is its position (CSV)."""
 
     def finish(self, con) -> None:
         """After staging read the file: collect rejected lines, build table ``skip_offset``.
@@ -62,69 +61,27 @@ class ScanResult:
         con.execute("CREATE OR REPLACE TEMP TABLE skip_offset (k_start BIGINT, lines_before BIGINT)")
         if offsets:
             con.executemany("INSERT INTO skip_offset VALUES (?, ?)", offsets)
-        if self.csv_layout:
-            self.miscounted = _trailing_extra_fields(con, *self.csv_layout, self.empty_lines, skipped)
 
 
-def _trailing_extra_fields(con, path: Path, delimiter: str, quote: str, n_columns: int,
-                           empty_lines: list[int], skipped: list[int]) -> list[tuple[int, str]]:
-    """Parsed rows whose line ends in one extra, empty field.
-
-    DuckDB's reader accepts a line with one field too many when that field is empty (a
-    trailing delimiter), which would shift every value one column to the right. Lines ending
-    in the delimiter are re-counted here (quoted text removed first) and returned as
-    (row_k, line) so that they are quarantined instead.
-    """
-    path_text = str(path).replace("'", "''")
-    d = delimiter.replace("'", "''")
-    q = quote.replace("'", "''")
-    unquoted = f"regexp_replace(l, '{q}[^{q}]*{q}', '', 'g')" if q else "l"
-    rows = con.execute(
-        f"""
-        SELECT n, l FROM (
-            SELECT row_number() OVER () AS n, l
-            FROM read_csv('{path_text}', header = false, columns = {{'l': 'VARCHAR'}}, delim = '\x01',
-                          quote = '', escape = '', auto_detect = false, strict_mode = false,
-                          encoding = 'latin-1',  -- decodes any byte: line numbers stay aligned
-                          null_padding = true, max_line_size = 10000000)
-        )
-        WHERE ends_with(l, '{d}')
-          AND (length({unquoted}) - length(replace({unquoted}, '{d}', ''))) / length('{d}') >= {n_columns}
-        """
-    ).fetchall()
-    found = []
-    blanks = sorted(empty_lines)
-    for ordinal, line in rows:  # the line scan skips empty lines: map back to file lines
-        file_line = ordinal
-        for blank in blanks:
-            if blank <= file_line:
-                file_line += 1
-        row_k = file_line - sum(1 for s in skipped if s < file_line)
-        if file_line not in skipped:
-            found.append((row_k, line))
-    return found
+# A newline followed by an empty line (LF or CRLF); zero-width, so runs of empty lines all match.
+_BEFORE_EMPTY_LINE = re.compile(b"\n(?=\r?\n)")
 
 
 def file_digest(path: Path) -> tuple[str, list[int]]:
     """SHA-256 of the file and the 1-based numbers of its empty lines (one pass)."""
     digest = hashlib.sha256()
     empty_lines: list[int] = []
-    line_no = 1
+    line_no = 1  # number of the line the chunk starts in
     previous_end = b"\n"  # a file starting with a newline has an empty first line
     with path.open("rb") as handle:
         while chunk := handle.read(_CHUNK):
             digest.update(chunk)
             data = previous_end + chunk
-            start = 0
-            while True:
-                hit = data.find(b"\n\n", start)
-                crlf = data.find(b"\n\r\n", start)
-                hits = [h for h in (hit, crlf) if h >= 0]
-                if not hits:
-                    break
-                pos = min(hits)
-                empty_lines.append(line_no + data.count(b"\n", 0, pos + 1) - 1)
-                start = pos + 1
+            seen, newlines = 0, 0
+            for hit in _BEFORE_EMPTY_LINE.finditer(data):
+                newlines += data.count(b"\n", seen, hit.start() + 1)
+                seen = hit.start() + 1
+                empty_lines.append(line_no + newlines - 1)
             line_no += chunk.count(b"\n")
             previous_end = chunk[-1:]
     return digest.hexdigest(), sorted(set(empty_lines))
@@ -161,8 +118,14 @@ def _check_mapped_columns(path: Path, header: list[str], table: TableMapping) ->
         )
 
 
-def _create_src_view(con, relation: str, table: TableMapping, list_columns: set[str]) -> None:
-    """View ``src``: row_k and every canonical column as text (NULL when not mapped)."""
+def _create_src_view(con, relation: str, table: TableMapping, list_columns: set[str],
+                     line_check: tuple[str, str, str] | None = None) -> None:
+    """View ``src``: row_k, every canonical column as text (NULL when not mapped or empty),
+    and ``line_problem`` / ``line_raw`` (a CSV line with a wrong number of fields).
+
+    ``line_check`` = (last source column, extra column, delimiter) of a CSV read with one
+    column more than its header and empty fields kept as '' (see :func:`scan_csv`).
+    """
     parts = ["row_k"]
     separator = table.options.get("statement_separator", " | ")
     for canonical in CANONICAL_COLUMNS[table.table]:
@@ -172,40 +135,77 @@ def _create_src_view(con, relation: str, table: TableMapping, list_columns: set[
         elif source in list_columns:
             sep = separator if canonical == "statements" else table.options.get("code_separator", ";")
             parts.append(f"array_to_string(\"{source}\", '{sep}') AS {canonical}")
+        elif line_check:
+            parts.append(f"nullif(\"{source}\", '') AS {canonical}")
         else:
             parts.append(f'CAST("{source}" AS VARCHAR) AS {canonical}')
+    if line_check:
+        last, extra, delimiter = line_check
+        parts.append(
+            f"CASE WHEN \"{extra}\" IS NOT NULL THEN 'malformed line (too many columns)' "
+            f"WHEN \"{last}\" IS NULL THEN 'malformed line (missing columns)' END AS line_problem"
+        )
+        fields = ", ".join(f'"{name}"' for name in _raw_columns(con, relation) if name != "row_k")
+        parts.append(
+            f"CASE WHEN \"{extra}\" IS NOT NULL OR \"{last}\" IS NULL "
+            f"THEN concat_ws('{delimiter.replace(chr(39), chr(39) * 2)}', {fields}) END AS line_raw"
+        )
+    else:
+        parts += ["CAST(NULL AS VARCHAR) AS line_problem", "CAST(NULL AS VARCHAR) AS line_raw"]
     con.execute(f"CREATE OR REPLACE TEMP VIEW src AS SELECT {', '.join(parts)} FROM {relation}")
 
 
+def _raw_columns(con, relation: str) -> list[str]:
+    return [row[0] for row in con.execute(f"DESCRIBE {relation}").fetchall()]
+
+
+# Read as NULL by the CSV reader: never a whole field in practice, so empty fields arrive as ''
+# and only the padding of a short line is NULL (empty fields become NULL in ``src``).
+_NEVER_NULL = "\x02dromos:no-null-marker\x03"
+
+
+def _extra_column(header: list[str]) -> str:
+    name = "dromos_extra_field"
+    while name in header:
+        name += "_"
+    return name
+
+
 def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping, sha256: str, empty_lines: list[int]) -> ScanResult:
-    """Define ``src`` over DuckDB's ``read_csv`` of the file (read once, when staging runs)."""
+    """Define ``src`` over DuckDB's ``read_csv`` of the file (read once, when staging runs).
+
+    The file is read with one column more than its header and with padding of short lines, so
+    that a wrong number of fields shows in the row itself (``line_problem``): DuckDB would
+    otherwise accept a line with one extra empty field silently. ``src`` has no row_k:
+    numbering rows with a window function would make DuckDB read the file on one thread.
+    Staging keeps file order instead (no hash join before its output), and the loader numbers
+    the staged rows by position (``ScanResult.positional``).
+    """
     options = mapping.csv
     header = _csv_header(path, options)
     _check_mapped_columns(path, header, table)
     header_lines = 1 if options.get("header", True) else 0
-    columns = ", ".join(f"'{name.replace(chr(39), chr(39) * 2)}': 'VARCHAR'" for name in header)
+    extra = _extra_column(header)
+    columns = ", ".join(f"'{name.replace(chr(39), chr(39) * 2)}': 'VARCHAR'" for name in [*header, extra])
     con.execute("DROP TABLE IF EXISTS dromos_rejects; DROP TABLE IF EXISTS dromos_reject_scans")
     quoted = {k: "'" + str(options[k]).replace("'", "''") + "'" for k in ("delimiter", "quote", "escape")}
     path_text = str(path).replace("'", "''")
-    # row_number() OVER () follows file order (insertion order is preserved; checked in tests).
     con.execute(
         f"""
         CREATE OR REPLACE TEMP VIEW raw_numbered AS
-        SELECT row_number() OVER () AS row_k, *
+        SELECT CAST(NULL AS BIGINT) AS row_k, *
         FROM read_csv(
             '{path_text}', header = {str(bool(header_lines)).lower()}, auto_detect = false,
             columns = {{{columns}}}, delim = {quoted['delimiter']}, quote = {quoted['quote']},
-            escape = {quoted['escape']}, null_padding = false, store_rejects = true,
-            rejects_table = 'dromos_rejects', rejects_scan = 'dromos_reject_scans',
-            max_line_size = 10000000
+            escape = {quoted['escape']}, null_padding = true, nullstr = '{_NEVER_NULL}',
+            store_rejects = true, rejects_table = 'dromos_rejects',
+            rejects_scan = 'dromos_reject_scans', max_line_size = 10000000
         )
         """
     )
-    _create_src_view(con, "raw_numbered", table, set())
-    return ScanResult(
-        sha256=sha256, kind="csv", header_lines=header_lines, empty_lines=empty_lines,
-        csv_layout=(path, options["delimiter"], options["quote"], len(header)),
-    )
+    _create_src_view(con, "raw_numbered", table, set(), (header[-1], extra, options["delimiter"]))
+    return ScanResult(sha256=sha256, kind="csv", header_lines=header_lines, empty_lines=empty_lines,
+                      positional=True)
 
 
 def _reject_reason(error_types: str) -> str:

@@ -1,11 +1,15 @@
 -- Stage a procedure or diagnosis export (dated codes of a person).
 -- Grain: one row per source record. Key: all columns; a row seen again is a duplicate.
 -- Input: view src, temp table ingest_param; parameters $date_formats and $default_code_system.
--- Output: temp table stage_checked (row-local checks; coded_event_refs.sql checks the person).
-CREATE OR REPLACE TEMP TABLE stage_checked AS
+-- Output: temp table stage_typed (row-local checks; exposed as view stage_checked;
+-- coded_event_refs.sql checks the person). No hash join between src and the output: rows stay
+-- in file order.
+CREATE OR REPLACE TEMP TABLE stage_typed AS
 WITH typed AS (
     SELECT
         s.row_k,
+        s.line_problem,
+        s.line_raw,
         dromos_text(s.person_key) AS person_key_raw,
         dromos_person_key(dromos_text(s.person_key)) AS person_key,
         s.date AS date_raw,
@@ -17,19 +21,19 @@ WITH typed AS (
 checked AS (
     SELECT
         t.*,
-        list_filter([
+        CASE WHEN t.line_problem IS NOT NULL THEN [dromos_line_problem(t.line_problem, t.line_raw)] ELSE list_filter([
             dromos_problem('person_key', t.person_key, t.person_key IS NULL, 'missing required value'),
             dromos_problem('date', t.date_raw, dromos_text(t.date_raw) IS NULL, 'missing required value'),
             dromos_problem('date', t.date_raw, dromos_text(t.date_raw) IS NOT NULL AND t.date IS NULL, 'unparseable date'),
             dromos_problem('date', t.date_raw, t.date < p.earliest_date OR t.date > p.latest_date, 'date out of range'),
             dromos_problem('code', t.code, t.code IS NULL, 'missing required value')
-        ], lambda x: x IS NOT NULL) AS problems,
+        ], lambda x: x IS NOT NULL) END AS problems,
         row(t.person_key, t.date, t.code_system, t.code) AS dedup_key,
         hash(t.person_key, t.date, t.code_system, t.code) AS content_hash
     FROM typed AS t
     CROSS JOIN ingest_param AS p
 )
 SELECT
-    c.* EXCLUDE (person_key_raw, date_raw),
+    c.* EXCLUDE (person_key_raw, date_raw, line_problem, line_raw),
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
 FROM checked AS c;

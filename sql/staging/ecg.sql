@@ -2,22 +2,29 @@
 -- Grain: one row per source record. Key: (ecg_key, read_kind).
 -- Input: view src, temp tables code_map and ingest_param (ranges, unit factors, date bounds);
 -- parameters $timestamp_formats, $statement_separator, $code_separator.
--- Output: temp table stage_checked (typed columns, problems, repairs; raw text is kept only
--- inside problems). Row-local checks only: references to the registry (person known, dates
--- within life, key already loaded) are checked next by ecg_refs.sql on the materialized rows.
+-- Output: temp table stage_typed (typed columns, problems, repairs; raw text is kept only
+-- inside problems; exposed as view stage_checked). Row-local checks only: references to the
+-- registry (person known, dates within life, key already loaded) are checked next by
+-- ecg_refs.sql on the materialized rows. No hash join between src and the output (the code
+-- lookup is a map): rows stay in file order, which is how CSV records are numbered.
 -- Each raw value is parsed once; problem and repair lists are built only for rows that have one
 -- (most rows are clean, and building lists for every row dominated the cost).
-CREATE OR REPLACE TEMP TABLE stage_checked AS
-WITH parsed AS (
+CREATE OR REPLACE TEMP TABLE stage_typed AS
+WITH read_kind_codes AS (
+    SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'read_kind'
+),
+parsed AS (
     SELECT
         s.row_k,
+        s.line_problem,
+        s.line_raw,
         dromos_text(s.ecg_key) AS ecg_key,
         dromos_person_key(dromos_text(s.person_key)) AS person_key,
         s.acquired_at AS acquired_at_raw,
         CAST(try_strptime(dromos_text(s.acquired_at), $timestamp_formats) AS TIMESTAMP) AS acquired_at,
         dromos_text(s.site) AS site,
         s.read_kind AS read_kind_raw,
-        CASE WHEN s.read_kind IS NULL THEN 'machine' ELSE read_kind_code.code END AS read_kind,
+        CASE WHEN s.read_kind IS NULL THEN 'machine' ELSE rk.codes[lower(dromos_text(s.read_kind))] END AS read_kind,
         s.ventricular_rate AS ventricular_rate_raw, TRY_CAST(s.ventricular_rate AS DOUBLE) AS ventricular_rate,
         s.atrial_rate AS atrial_rate_raw, TRY_CAST(s.atrial_rate AS DOUBLE) AS atrial_rate,
         s.pr_ms AS pr_ms_raw, TRY_CAST(s.pr_ms AS DOUBLE) AS pr_value,
@@ -37,8 +44,7 @@ WITH parsed AS (
         p.pr_ms_factor, p.qrs_ms_factor, p.qt_ms_factor, p.qtc_ms_factor
     FROM src AS s
     CROSS JOIN ingest_param AS p
-    LEFT JOIN code_map AS read_kind_code
-        ON read_kind_code.field = 'read_kind' AND read_kind_code.source_value = lower(dromos_text(s.read_kind))
+    CROSS JOIN read_kind_codes AS rk
 ),
 converted AS (
     SELECT
@@ -77,7 +83,8 @@ SELECT
     dromos_axis(qrs_axis_value) AS qrs_axis,
     dromos_axis(t_axis_value) AS t_axis,
     statements, statement_codes,
-    CASE WHEN coalesce(f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12, f13, f14, f15) IS NULL THEN []
+    CASE WHEN line_problem IS NOT NULL THEN [dromos_line_problem(line_problem, line_raw)]
+         WHEN coalesce(f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12, f13, f14, f15) IS NULL THEN []
          ELSE list_filter([f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12, f13, f14, f15], lambda x: x IS NOT NULL)
     END AS problems,
     CASE WHEN pr_in_seconds OR qrs_in_seconds OR qt_in_seconds OR qtc_in_seconds THEN list_filter([

@@ -42,3 +42,7 @@ CREATE OR REPLACE TEMP MACRO dromos_split(x, sep) AS
             THEN string_split(x, sep)
         ELSE list_filter(list_transform(string_split(x, sep), lambda item: trim(item)), lambda item: item <> '')
     END;
+-- The problem of a CSV line with a wrong number of fields (NULL when the line is fine; see
+-- cohort/ingest/sources.py). Such a line's other checks are left out: its fields are shifted.
+CREATE OR REPLACE TEMP MACRO dromos_line_problem(problem, raw) AS
+    CASE WHEN problem IS NOT NULL THEN {'field': CAST(NULL AS VARCHAR), 'raw_value': raw, 'reason': problem} END;

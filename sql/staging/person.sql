@@ -1,31 +1,36 @@
 -- Stage a person export.
 -- Grain: one row per source record (row_k = its position among the rows the reader parsed).
 -- Input: view src (row_k + canonical columns as text), temp tables code_map, ingest_param;
--- parameter $date_formats. Output: temp table stage_checked (typed columns, problems); the
--- registry is consulted next by person_refs.sql, then classify.sql decides.
-CREATE OR REPLACE TEMP TABLE stage_checked AS
-WITH typed AS (
+-- parameter $date_formats. Output: temp table stage_typed (typed columns, problems; the loader
+-- exposes it as view stage_checked); the registry is consulted next by person_refs.sql, then
+-- classify.sql decides. No hash join between src and the output: rows stay in file order.
+CREATE OR REPLACE TEMP TABLE stage_typed AS
+WITH sex_codes AS (
+    SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'sex'
+),
+typed AS (
     SELECT
         s.row_k,
+        s.line_problem,
+        s.line_raw,
         dromos_text(s.person_key) AS person_key_raw,
         dromos_person_key(dromos_text(s.person_key)) AS person_key,
         s.birth_date AS birth_date_raw,
         dromos_date(s.birth_date, $date_formats) AS birth_date,
         s.sex AS sex_raw,
-        coalesce(sex_code.code, CASE WHEN dromos_text(s.sex) IS NULL THEN 'U' END) AS sex,
+        coalesce(sc.codes[lower(dromos_text(s.sex))], CASE WHEN dromos_text(s.sex) IS NULL THEN 'U' END) AS sex,
         dromos_text(s.site) AS site,
         s.death_date AS death_date_raw,
         dromos_date(s.death_date, $date_formats) AS death_date,
         s.followup_end AS followup_end_raw,
         dromos_date(s.followup_end, $date_formats) AS followup_end
     FROM src AS s
-    LEFT JOIN code_map AS sex_code
-        ON sex_code.field = 'sex' AND sex_code.source_value = lower(dromos_text(s.sex))
+    CROSS JOIN sex_codes AS sc
 ),
 checked AS (
     SELECT
-        t.* EXCLUDE (person_key_raw, birth_date_raw, sex_raw, death_date_raw, followup_end_raw),
-        list_filter([
+        t.* EXCLUDE (person_key_raw, birth_date_raw, sex_raw, death_date_raw, followup_end_raw, line_problem, line_raw),
+        CASE WHEN t.line_problem IS NOT NULL THEN [dromos_line_problem(t.line_problem, t.line_raw)] ELSE list_filter([
             dromos_problem('person_key', t.person_key, t.person_key IS NULL, 'missing required value'),
             dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NULL, 'missing required value'),
             dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NOT NULL AND t.birth_date IS NULL, 'unparseable date'),
@@ -38,7 +43,7 @@ checked AS (
             dromos_problem('followup_end', t.followup_end_raw, dromos_text(t.followup_end_raw) IS NOT NULL AND t.followup_end IS NULL, 'unparseable date'),
             dromos_problem('followup_end', t.followup_end_raw, t.followup_end < t.birth_date, 'end of follow-up before birth'),
             dromos_problem('death_date', t.death_date_raw, t.death_date > t.followup_end, 'death after end of follow-up')
-        ], lambda x: x IS NOT NULL) AS problems,
+        ], lambda x: x IS NOT NULL) END AS problems,
         hash(t.person_key, t.birth_date, t.sex, t.site, t.death_date, t.followup_end) AS content_hash
     FROM typed AS t
     CROSS JOIN ingest_param AS p

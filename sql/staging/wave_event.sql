@@ -1,28 +1,33 @@
 -- Stage a beat-level wave export (P and QRS onset times of a tracing).
 -- Grain: one row per source record. Key: (ecg_key, t_ms, kind); a key seen again is a duplicate.
--- Input: view src, temp tables code_map and ingest_param. Output: temp table stage_checked
--- (row-local checks; wave_event_refs.sql checks the tracing exists).
-CREATE OR REPLACE TEMP TABLE stage_checked AS
-WITH typed AS (
+-- Input: view src, temp tables code_map and ingest_param. Output: temp table stage_typed
+-- (row-local checks; exposed as view stage_checked; wave_event_refs.sql checks the tracing
+-- exists). No hash join between src and the output: rows stay in file order.
+CREATE OR REPLACE TEMP TABLE stage_typed AS
+WITH kind_codes AS (
+    SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'kind'
+),
+typed AS (
     SELECT
         s.row_k,
+        s.line_problem,
+        s.line_raw,
         dromos_text(s.ecg_key) AS ecg_key,
         s.t_ms AS t_ms_raw,
         dromos_number(s.t_ms) AS t_ms,
         s.kind AS kind_raw,
-        kind_code.code AS kind
+        kc.codes[lower(dromos_text(s.kind))] AS kind
     FROM src AS s
-    LEFT JOIN code_map AS kind_code
-        ON kind_code.field = 'kind' AND kind_code.source_value = lower(dromos_text(s.kind))
+    CROSS JOIN kind_codes AS kc
 )
 SELECT
     t.row_k, t.ecg_key, t.t_ms, t.kind,
-    list_filter([
+    CASE WHEN t.line_problem IS NOT NULL THEN [dromos_line_problem(t.line_problem, t.line_raw)] ELSE list_filter([
         dromos_problem('ecg_key', t.ecg_key, t.ecg_key IS NULL, 'missing required value'),
         dromos_problem('t_ms', t.t_ms_raw, dromos_text(t.t_ms_raw) IS NULL, 'missing required value'),
         dromos_number_problem('t_ms', t.t_ms_raw, t.t_ms, p.t_ms_lo, p.t_ms_hi),
         dromos_problem('kind', t.kind_raw, t.kind IS NULL, 'unknown wave kind (expected P or QRS)')
-    ], lambda x: x IS NOT NULL) AS problems,
+    ], lambda x: x IS NOT NULL) END AS problems,
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs,
     row(t.ecg_key, t.t_ms, t.kind) AS dedup_key,
     hash(t.ecg_key, t.t_ms, t.kind) AS content_hash
