@@ -8,10 +8,12 @@ whose content (sha256) was already loaded into the same table loads nothing new.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import time
 import tomllib
 from collections.abc import Callable, Iterable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -99,7 +101,8 @@ def _prepare_session(con, rules: dict, table: TableMapping, key: bytes | None) -
     con.executemany("INSERT INTO column_map VALUES (?, ?)", list(table.columns.items()))
 
 
-def _stage(con, table: TableMapping, scanned: sources.ScanResult) -> None:
+def _stage_rows(con, table: TableMapping) -> None:
+    """Run the table's row-local staging statement (reads the source): ``stage_typed``."""
     options = table.options
     if table.table in ("procedure", "diagnosis"):
         con.execute(f"CREATE OR REPLACE TEMP VIEW target_rows AS SELECT * FROM {table.table}")
@@ -114,12 +117,27 @@ def _stage(con, table: TableMapping, scanned: sources.ScanResult) -> None:
         "procedure": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
         "diagnosis": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
     }[table.table]
-    local_sql, refs_sql = _STAGE_SQL[table.table]
-    con.execute(read_sql(local_sql), params)
+    con.execute(read_sql(_STAGE_SQL[table.table][0]), params)
+
+
+def _stage_checks(con, scanned: sources.ScanResult) -> None:
+    """Number the staged rows, check registry references, classify (``stage_outcome``)."""
     _expose_staged(con, scanned.positional)
     scanned.finish(con)
-    con.execute(read_sql(refs_sql))
+    con.execute(read_sql(_STAGE_SQL[scanned.table][1]))
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
+
+
+@contextlib.contextmanager
+def _read_errors(path: Path, kind: str, mapping: Mapping):
+    """DuckDB's reading errors as an error naming the file and what to check."""
+    try:
+        yield
+    except (duckdb.InvalidInputException, duckdb.IOException, duckdb.ConversionException) as exc:
+        raise InputFileError(
+            f"{path}: cannot be read as {kind} with mapping {mapping.mapping_id}: {exc}. "
+            "Check the file's delimiter, quoting and encoding against the mapping."
+        ) from exc
 
 
 def _expose_staged(con, positional: bool) -> None:
@@ -147,10 +165,13 @@ def _expose_staged(con, positional: bool) -> None:
 def _write_outcomes(con, table: str, source_id: str, rejected: list) -> tuple[int, int, int, int]:
     """Insert loaded rows and the quarantine / repair / duplicate records; return the counts."""
     target_columns = [row[0] for row in con.execute(f"DESCRIBE {table}").fetchall() if row[0] != "source_id"]
+    held_back = con.execute("SELECT EXISTS (SELECT 1 FROM stage_outcome WHERE status <> 'load')").fetchone()[0]
+    # A file with nothing held back (the usual case) is copied without the anti-join.
+    keep = ("WHERE NOT EXISTS (SELECT 1 FROM stage_outcome AS o WHERE o.row_k = s.row_k AND o.status <> 'load')"
+            if held_back else "")
     con.execute(
         f"INSERT INTO {table} ({', '.join(target_columns)}, source_id) "
-        f"SELECT {', '.join(target_columns)}, $source_id FROM stage_checked AS s "
-        "WHERE NOT EXISTS (SELECT 1 FROM stage_outcome AS o WHERE o.row_k = s.row_k AND o.status <> 'load')",
+        f"SELECT {', '.join(target_columns)}, $source_id FROM stage_checked AS s {keep}",
         {"source_id": source_id},
     )
     params = {"source_id": source_id}
@@ -209,14 +230,17 @@ def load_file(
     table_mapping = mapping.tables[table] if table else mapping.table_for(path)
     if table and table not in mapping.tables:
         raise MappingError(f"mapping {mapping.mapping_id} has no [table.{table}] section")
-    sha256, empty_lines = sources.file_digest(path)
+    # The file's digest (needed only once its rows are staged) is taken on a second thread
+    # while DuckDB reads the file.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="dromos-digest") as pool:
+        digest = pool.submit(sources.file_digest, path)
 
-    def scan() -> sources.ScanResult:
-        if kind == "csv":
-            return sources.scan_csv(con, path, mapping, table_mapping, sha256, empty_lines)
-        return sources.scan_parquet(con, path, table_mapping, sha256)
+        def scan() -> sources.ScanResult:
+            if kind == "csv":
+                return sources.scan_csv(con, path, mapping, table_mapping)
+            return sources.scan_parquet(con, path, table_mapping)
 
-    return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, sha256, kind)
+        return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, digest.result, kind)
 
 
 def _load_scanned(
@@ -227,30 +251,33 @@ def _load_scanned(
     mapping: Mapping,
     key: bytes | None,
     rules: dict,
-    sha256: str,
+    digest: Callable[[], tuple[str, list[int]]],
     kind: str,
 ) -> LoadResult:
-    """Run scan -> stage -> classify -> write -> log inside one transaction."""
+    """Run scan -> stage -> classify -> write -> log inside one transaction.
+
+    ``digest()`` gives the file's sha256 and empty lines; content loaded before (same sha256,
+    same table) is rolled back after staging and reported as skipped.
+    """
     started = time.perf_counter()
     table = table_mapping.table
-    source_id = f"{table}:{sha256[:16]}"
     ensure_schema(con)
-    already = con.execute("SELECT rows_read FROM load_log WHERE source_id = ?", [source_id]).fetchone()
-    if already:  # same content loaded before: nothing new, nothing logged again
-        return LoadResult(path, table, source_id, 0, 0, 0, 0, 0, 0.0, skipped=True)
     check = key_check(key)
     _check_pseudonym_consistency(con, check, path)
     con.execute("BEGIN TRANSACTION")
     try:
         _prepare_session(con, rules, table_mapping, key)
-        try:  # the file itself is read while staging
+        with _read_errors(path, kind, mapping):  # the file itself is read while staging
             scanned = scan()
-            _stage(con, table_mapping, scanned)
-        except (duckdb.InvalidInputException, duckdb.IOException, duckdb.ConversionException) as exc:
-            raise InputFileError(
-                f"{path}: cannot be read as {kind} with mapping {mapping.mapping_id}: {exc}. "
-                "Check the file's delimiter, quoting and encoding against the mapping."
-            ) from exc
+            _stage_rows(con, table_mapping)
+        sha256, scanned.empty_lines = digest()
+        source_id = f"{table}:{sha256[:16]}"
+        if con.execute("SELECT 1 FROM load_log WHERE source_id = ?", [source_id]).fetchone():
+            con.execute("ROLLBACK")  # same content loaded before: nothing new, nothing logged again
+            _drop_temporaries(con)
+            return LoadResult(path, table, source_id, 0, 0, 0, 0, 0, 0.0, skipped=True)
+        with _read_errors(path, kind, mapping):
+            _stage_checks(con, scanned)
         staged = con.execute("SELECT count(*) FROM stage_checked").fetchone()[0]
         if staged == 0 and scanned.rejected:
             reasons = sorted({reason for *_, reason in scanned.rejected})

@@ -24,8 +24,9 @@ _CHUNK = 8 * 1024 * 1024
 class ScanResult:
     """What reading a source produced besides the ``src`` view."""
 
-    sha256: str
     kind: str  # csv | parquet | fhir
+    table: str
+    sha256: str = ""
     header_lines: int = 0
     empty_lines: list[int] = field(default_factory=list)
     rejected: list[tuple[int, str | None, str, str]] = field(default_factory=list)
@@ -171,7 +172,7 @@ def _extra_column(header: list[str]) -> str:
     return name
 
 
-def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping, sha256: str, empty_lines: list[int]) -> ScanResult:
+def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping) -> ScanResult:
     """Define ``src`` over DuckDB's ``read_csv`` of the file (read once, when staging runs).
 
     The file is read with one column more than its header and with padding of short lines, so
@@ -204,8 +205,7 @@ def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping, sha256: str
         """
     )
     _create_src_view(con, "raw_numbered", table, set(), (header[-1], extra, options["delimiter"]))
-    return ScanResult(sha256=sha256, kind="csv", header_lines=header_lines, empty_lines=empty_lines,
-                      positional=True)
+    return ScanResult(kind="csv", table=table.table, header_lines=header_lines, positional=True)
 
 
 def _reject_reason(error_types: str) -> str:
@@ -214,7 +214,7 @@ def _reject_reason(error_types: str) -> str:
     return f"malformed line ({error_types.lower()})"
 
 
-def scan_parquet(con, path: Path, table: TableMapping, sha256: str) -> ScanResult:
+def scan_parquet(con, path: Path, table: TableMapping) -> ScanResult:
     """Define ``src`` over the Parquet file (record = row position in the file)."""
     path_text = str(path).replace("'", "''")
     con.execute(
@@ -226,7 +226,7 @@ def scan_parquet(con, path: Path, table: TableMapping, sha256: str) -> ScanResul
     _check_mapped_columns(path, header, table)
     list_columns = {row[0] for row in described if str(row[1]).endswith("[]")}
     _create_src_view(con, "raw_source", table, list_columns)
-    return ScanResult(sha256=sha256, kind="parquet")
+    return ScanResult(kind="parquet", table=table.table)
 
 
 def scan_arrow(con, arrow_table, table: TableMapping, sha256: str, kind: str) -> ScanResult:
@@ -241,4 +241,4 @@ def scan_arrow(con, arrow_table, table: TableMapping, sha256: str, kind: str) ->
         options=table.options,
     )
     _create_src_view(con, "raw_arrow", identity, set())
-    return ScanResult(sha256=sha256, kind=kind)
+    return ScanResult(kind=kind, table=table.table, sha256=sha256)

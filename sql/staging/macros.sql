@@ -32,11 +32,12 @@ CREATE OR REPLACE TEMP MACRO dromos_axis(value) AS CASE WHEN value > 180 THEN va
 -- Date from text with any of the given formats (a list known when the statement is bound).
 CREATE OR REPLACE TEMP MACRO dromos_date(x, formats) AS CAST(try_strptime(dromos_text(x), formats) AS DATE);
 -- Split a field holding several values; items are trimmed and empty items dropped. Tidy text
--- (no stray blanks or empty items) takes the plain split, which is several times cheaper.
+-- (no stray blanks or empty items) takes the plain split, which is several times cheaper;
+-- only the end characters are trimmed to test for blanks at the ends (trimming x copies it).
 CREATE OR REPLACE TEMP MACRO dromos_split(x, sep) AS
     CASE
         WHEN x IS NULL THEN []
-        WHEN trim(x) = x AND NOT contains(x, '  ') AND NOT contains(x, sep || sep)
+        WHEN trim(x[1]) = x[1] AND trim(x[-1]) = x[-1] AND NOT contains(x, '  ') AND NOT contains(x, sep || sep)
              AND NOT starts_with(x, sep) AND NOT ends_with(x, sep)
              AND NOT contains(x, ' ' || sep) AND NOT contains(x, sep || ' ')
             THEN string_split(x, sep)

@@ -27,26 +27,36 @@ typed AS (
     FROM src AS s
     CROSS JOIN sex_codes AS sc
 ),
-checked AS (
+found AS (
     SELECT
-        t.* EXCLUDE (person_key_raw, birth_date_raw, sex_raw, death_date_raw, followup_end_raw, line_problem, line_raw),
-        CASE WHEN t.line_problem IS NOT NULL THEN [dromos_line_problem(t.line_problem, t.line_raw)] ELSE list_filter([
-            dromos_problem('person_key', t.person_key, t.person_key IS NULL, 'missing required value'),
-            dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NULL, 'missing required value'),
-            dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NOT NULL AND t.birth_date IS NULL, 'unparseable date'),
-            dromos_problem('birth_date', t.birth_date_raw, t.birth_date < p.earliest_date OR t.birth_date > p.latest_date, 'date out of range'),
-            dromos_problem('sex', t.sex_raw, t.sex IS NULL, 'unknown sex code'),
-            dromos_problem('death_date', t.death_date_raw, dromos_text(t.death_date_raw) IS NOT NULL AND t.death_date IS NULL, 'unparseable date'),
-            dromos_problem('death_date', t.death_date_raw, t.death_date < t.birth_date, 'death before birth'),
-            dromos_problem('death_date', t.death_date_raw, t.death_date > p.latest_date, 'date out of range'),
-            dromos_problem('followup_end', t.followup_end_raw, dromos_text(t.followup_end_raw) IS NULL, 'missing required value'),
-            dromos_problem('followup_end', t.followup_end_raw, dromos_text(t.followup_end_raw) IS NOT NULL AND t.followup_end IS NULL, 'unparseable date'),
-            dromos_problem('followup_end', t.followup_end_raw, t.followup_end < t.birth_date, 'end of follow-up before birth'),
-            dromos_problem('death_date', t.death_date_raw, t.death_date > t.followup_end, 'death after end of follow-up')
-        ], lambda x: x IS NOT NULL) END AS problems,
-        hash(t.person_key, t.birth_date, t.sex, t.site, t.death_date, t.followup_end) AS content_hash
+        t.*,
+        dromos_line_problem(t.line_problem, t.line_raw) AS f0,
+        dromos_problem('person_key', t.person_key, t.person_key IS NULL, 'missing required value') AS f1,
+        dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NULL, 'missing required value') AS f2,
+        dromos_problem('birth_date', t.birth_date_raw, dromos_text(t.birth_date_raw) IS NOT NULL AND t.birth_date IS NULL, 'unparseable date') AS f3,
+        dromos_problem('birth_date', t.birth_date_raw, t.birth_date < p.earliest_date OR t.birth_date > p.latest_date, 'date out of range') AS f4,
+        dromos_problem('sex', t.sex_raw, t.sex IS NULL, 'unknown sex code') AS f5,
+        dromos_problem('death_date', t.death_date_raw, dromos_text(t.death_date_raw) IS NOT NULL AND t.death_date IS NULL, 'unparseable date') AS f6,
+        dromos_problem('death_date', t.death_date_raw, t.death_date < t.birth_date, 'death before birth') AS f7,
+        dromos_problem('death_date', t.death_date_raw, t.death_date > p.latest_date, 'date out of range') AS f8,
+        dromos_problem('followup_end', t.followup_end_raw, dromos_text(t.followup_end_raw) IS NULL, 'missing required value') AS f9,
+        dromos_problem('followup_end', t.followup_end_raw, dromos_text(t.followup_end_raw) IS NOT NULL AND t.followup_end IS NULL, 'unparseable date') AS f10,
+        dromos_problem('followup_end', t.followup_end_raw, t.followup_end < t.birth_date, 'end of follow-up before birth') AS f11,
+        dromos_problem('death_date', t.death_date_raw, t.death_date > t.followup_end, 'death after end of follow-up') AS f12
     FROM typed AS t
     CROSS JOIN ingest_param AS p
+),
+-- Problem lists are built only for rows that have one (most rows are clean).
+checked AS (
+    SELECT
+        t.* EXCLUDE (person_key_raw, birth_date_raw, sex_raw, death_date_raw, followup_end_raw, line_problem, line_raw,
+                     f0, f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12),
+        CASE WHEN t.f0 IS NOT NULL THEN [t.f0]
+             WHEN coalesce(f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12) IS NULL THEN []
+             ELSE list_filter([f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12], lambda x: x IS NOT NULL)
+        END AS problems,
+        hash(t.person_key, t.birth_date, t.sex, t.site, t.death_date, t.followup_end) AS content_hash
+    FROM found AS t
 )
 SELECT
     c.*,

@@ -19,17 +19,26 @@ typed AS (
         kc.codes[lower(dromos_text(s.kind))] AS kind
     FROM src AS s
     CROSS JOIN kind_codes AS kc
+),
+found AS (
+    SELECT
+        t.*,
+        dromos_line_problem(t.line_problem, t.line_raw) AS f0,
+        dromos_problem('ecg_key', t.ecg_key, t.ecg_key IS NULL, 'missing required value') AS f1,
+        dromos_problem('t_ms', t.t_ms_raw, dromos_text(t.t_ms_raw) IS NULL, 'missing required value') AS f2,
+        dromos_number_problem('t_ms', t.t_ms_raw, t.t_ms, p.t_ms_lo, p.t_ms_hi) AS f3,
+        dromos_problem('kind', t.kind_raw, t.kind IS NULL, 'unknown wave kind (expected P or QRS)') AS f4
+    FROM typed AS t
+    CROSS JOIN ingest_param AS p
 )
+-- Problem lists are built only for rows that have one (most rows are clean).
 SELECT
-    t.row_k, t.ecg_key, t.t_ms, t.kind,
-    CASE WHEN t.line_problem IS NOT NULL THEN [dromos_line_problem(t.line_problem, t.line_raw)] ELSE list_filter([
-        dromos_problem('ecg_key', t.ecg_key, t.ecg_key IS NULL, 'missing required value'),
-        dromos_problem('t_ms', t.t_ms_raw, dromos_text(t.t_ms_raw) IS NULL, 'missing required value'),
-        dromos_number_problem('t_ms', t.t_ms_raw, t.t_ms, p.t_ms_lo, p.t_ms_hi),
-        dromos_problem('kind', t.kind_raw, t.kind IS NULL, 'unknown wave kind (expected P or QRS)')
-    ], lambda x: x IS NOT NULL) END AS problems,
+    row_k, ecg_key, t_ms, kind,
+    CASE WHEN f0 IS NOT NULL THEN [f0]
+         WHEN coalesce(f1, f2, f3, f4) IS NULL THEN []
+         ELSE list_filter([f1, f2, f3, f4], lambda x: x IS NOT NULL)
+    END AS problems,
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs,
-    row(t.ecg_key, t.t_ms, t.kind) AS dedup_key,
-    hash(t.ecg_key, t.t_ms, t.kind) AS content_hash
-FROM typed AS t
-CROSS JOIN ingest_param AS p;
+    row(ecg_key, t_ms, kind) AS dedup_key,
+    hash(ecg_key, t_ms, kind) AS content_hash
+FROM found;
