@@ -8,7 +8,8 @@
 -- ecg_refs.sql on the materialized rows. No hash join between src and the output (the code
 -- lookup is a map): rows stay in file order, which is how CSV records are numbered.
 -- Each raw value is parsed once; problem and repair lists are built only for rows that have one
--- (most rows are clean, and building lists for every row dominated the cost).
+-- (most rows are clean, and building lists for every row dominated the cost): a cheap `clean`
+-- test runs on every row, the full checks only where it fails.
 CREATE OR REPLACE TEMP TABLE stage_typed AS
 WITH read_kind_codes AS (
     SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'read_kind'
@@ -56,36 +57,49 @@ converted AS (
     FROM parsed
 ),
 found AS (
+    -- clean: every check below passes (cheap tests first); only other rows get the full list
     SELECT
         c.*,
-        dromos_problem('ecg_key', c.ecg_key, c.ecg_key IS NULL, 'missing required value') AS f1,
-        dromos_problem('person_key', c.person_key, c.person_key IS NULL, 'missing required value') AS f2,
-        dromos_problem('acquired_at', c.acquired_at_raw, c.acquired_at IS NULL AND dromos_text(c.acquired_at_raw) IS NULL, 'missing required value') AS f3,
-        dromos_problem('acquired_at', c.acquired_at_raw, c.acquired_at IS NULL AND dromos_text(c.acquired_at_raw) IS NOT NULL, 'unparseable date') AS f4,
-        dromos_problem('acquired_at', c.acquired_at_raw, CAST(c.acquired_at AS DATE) < p.earliest_date OR CAST(c.acquired_at AS DATE) > p.latest_date, 'date out of range') AS f5,
-        dromos_problem('read_kind', c.read_kind_raw, c.read_kind IS NULL, 'unknown read kind') AS f6,
-        dromos_number_problem('ventricular_rate', c.ventricular_rate_raw, c.ventricular_rate, p.ventricular_rate_lo, p.ventricular_rate_hi) AS f7,
-        dromos_number_problem('atrial_rate', c.atrial_rate_raw, c.atrial_rate, p.atrial_rate_lo, p.atrial_rate_hi) AS f8,
-        dromos_number_problem('pr_ms', c.pr_ms_raw, c.pr_ms, p.pr_ms_lo, p.pr_ms_hi) AS f9,
-        dromos_number_problem('qrs_ms', c.qrs_ms_raw, c.qrs_ms, p.qrs_ms_lo, p.qrs_ms_hi) AS f10,
-        dromos_number_problem('qt_ms', c.qt_ms_raw, c.qt_ms, p.qt_ms_lo, p.qt_ms_hi) AS f11,
-        dromos_number_problem('qtc_ms', c.qtc_ms_raw, c.qtc_ms, p.qtc_ms_lo, p.qtc_ms_hi) AS f12,
-        dromos_number_problem('p_axis', c.p_axis_raw, c.p_axis_value, p.p_axis_lo, p.p_axis_hi) AS f13,
-        dromos_number_problem('qrs_axis', c.qrs_axis_raw, c.qrs_axis_value, p.qrs_axis_lo, p.qrs_axis_hi) AS f14,
-        dromos_number_problem('t_axis', c.t_axis_raw, c.t_axis_value, p.t_axis_lo, p.t_axis_hi) AS f15
+        c.ecg_key IS NOT NULL AND c.person_key IS NOT NULL AND c.read_kind IS NOT NULL
+            AND CAST(c.acquired_at AS DATE) BETWEEN p.earliest_date AND p.latest_date
+            AND dromos_value_ok(c.ventricular_rate_raw, c.ventricular_rate, p.ventricular_rate_lo, p.ventricular_rate_hi)
+            AND dromos_value_ok(c.atrial_rate_raw, c.atrial_rate, p.atrial_rate_lo, p.atrial_rate_hi)
+            AND dromos_value_ok(c.pr_ms_raw, c.pr_ms, p.pr_ms_lo, p.pr_ms_hi)
+            AND dromos_value_ok(c.qrs_ms_raw, c.qrs_ms, p.qrs_ms_lo, p.qrs_ms_hi)
+            AND dromos_value_ok(c.qt_ms_raw, c.qt_ms, p.qt_ms_lo, p.qt_ms_hi)
+            AND dromos_value_ok(c.qtc_ms_raw, c.qtc_ms, p.qtc_ms_lo, p.qtc_ms_hi)
+            AND dromos_value_ok(c.p_axis_raw, c.p_axis_value, p.p_axis_lo, p.p_axis_hi)
+            AND dromos_value_ok(c.qrs_axis_raw, c.qrs_axis_value, p.qrs_axis_lo, p.qrs_axis_hi)
+            AND dromos_value_ok(c.t_axis_raw, c.t_axis_value, p.t_axis_lo, p.t_axis_hi) AS clean
     FROM converted AS c
     CROSS JOIN ingest_param AS p
 )
 SELECT
-    row_k, ecg_key, person_key, acquired_at, site, read_kind, ventricular_rate, atrial_rate,
-    pr_ms, qrs_ms, qt_ms, qtc_ms,
-    dromos_axis(p_axis_value) AS p_axis,
-    dromos_axis(qrs_axis_value) AS qrs_axis,
-    dromos_axis(t_axis_value) AS t_axis,
-    statements, statement_codes,
+    c.row_k, c.ecg_key, c.person_key, c.acquired_at, c.site, c.read_kind, c.ventricular_rate, c.atrial_rate,
+    c.pr_ms, c.qrs_ms, c.qt_ms, c.qtc_ms,
+    dromos_axis(c.p_axis_value) AS p_axis,
+    dromos_axis(c.qrs_axis_value) AS qrs_axis,
+    dromos_axis(c.t_axis_value) AS t_axis,
+    c.statements, c.statement_codes,
     CASE WHEN line_problem IS NOT NULL THEN [dromos_line_problem(line_problem, line_raw)]
-         WHEN coalesce(f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12, f13, f14, f15) IS NULL THEN []
-         ELSE list_filter([f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12, f13, f14, f15], lambda x: x IS NOT NULL)
+         WHEN clean THEN []
+         ELSE list_filter([
+            dromos_problem('ecg_key', c.ecg_key, c.ecg_key IS NULL, 'missing required value'),
+            dromos_problem('person_key', c.person_key, c.person_key IS NULL, 'missing required value'),
+            dromos_problem('acquired_at', c.acquired_at_raw, c.acquired_at IS NULL AND dromos_text(c.acquired_at_raw) IS NULL, 'missing required value'),
+            dromos_problem('acquired_at', c.acquired_at_raw, c.acquired_at IS NULL AND dromos_text(c.acquired_at_raw) IS NOT NULL, 'unparseable date'),
+            dromos_problem('acquired_at', c.acquired_at_raw, CAST(c.acquired_at AS DATE) < p.earliest_date OR CAST(c.acquired_at AS DATE) > p.latest_date, 'date out of range'),
+            dromos_problem('read_kind', c.read_kind_raw, c.read_kind IS NULL, 'unknown read kind'),
+            dromos_number_problem('ventricular_rate', c.ventricular_rate_raw, c.ventricular_rate, p.ventricular_rate_lo, p.ventricular_rate_hi),
+            dromos_number_problem('atrial_rate', c.atrial_rate_raw, c.atrial_rate, p.atrial_rate_lo, p.atrial_rate_hi),
+            dromos_number_problem('pr_ms', c.pr_ms_raw, c.pr_ms, p.pr_ms_lo, p.pr_ms_hi),
+            dromos_number_problem('qrs_ms', c.qrs_ms_raw, c.qrs_ms, p.qrs_ms_lo, p.qrs_ms_hi),
+            dromos_number_problem('qt_ms', c.qt_ms_raw, c.qt_ms, p.qt_ms_lo, p.qt_ms_hi),
+            dromos_number_problem('qtc_ms', c.qtc_ms_raw, c.qtc_ms, p.qtc_ms_lo, p.qtc_ms_hi),
+            dromos_number_problem('p_axis', c.p_axis_raw, c.p_axis_value, p.p_axis_lo, p.p_axis_hi),
+            dromos_number_problem('qrs_axis', c.qrs_axis_raw, c.qrs_axis_value, p.qrs_axis_lo, p.qrs_axis_hi),
+            dromos_number_problem('t_axis', c.t_axis_raw, c.t_axis_value, p.t_axis_lo, p.t_axis_hi)
+         ], lambda x: x IS NOT NULL)
     END AS problems,
     CASE WHEN pr_in_seconds OR qrs_in_seconds OR qt_in_seconds OR qtc_in_seconds THEN list_filter([
         CASE WHEN pr_in_seconds THEN {'field': 'pr_ms', 'raw_value': pr_ms_raw, 'repaired_value': CAST(pr_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
@@ -93,8 +107,9 @@ SELECT
         CASE WHEN qt_in_seconds THEN {'field': 'qt_ms', 'raw_value': qt_ms_raw, 'repaired_value': CAST(qt_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
         CASE WHEN qtc_in_seconds THEN {'field': 'qtc_ms', 'raw_value': qtc_ms_raw, 'repaired_value': CAST(qtc_ms AS VARCHAR), 'rule': 'interval given in seconds'} END
     ], lambda x: x IS NOT NULL) ELSE [] END AS repairs,
-    row(ecg_key, read_kind) AS dedup_key,
-    hash(person_key, acquired_at, site, ventricular_rate, atrial_rate, pr_ms, qrs_ms, qt_ms, qtc_ms,
-         dromos_axis(p_axis_value), dromos_axis(qrs_axis_value), dromos_axis(t_axis_value),
-         statements, statement_codes) AS content_hash
-FROM found;
+    row(c.ecg_key, c.read_kind) AS dedup_key,
+    hash(c.person_key, c.acquired_at, c.site, c.ventricular_rate, c.atrial_rate, c.pr_ms, c.qrs_ms, c.qt_ms, c.qtc_ms,
+         dromos_axis(c.p_axis_value), dromos_axis(c.qrs_axis_value), dromos_axis(c.t_axis_value),
+         c.statements, c.statement_codes) AS content_hash
+FROM found AS c
+CROSS JOIN ingest_param AS p;

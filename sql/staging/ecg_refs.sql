@@ -14,7 +14,10 @@ WITH person_checks AS (
     FROM stage_checked AS s
     CROSS JOIN ingest_param AS p
     LEFT JOIN person AS pe ON pe.person_key = s.person_key
-    WHERE s.person_key IS NOT NULL
+    WHERE s.person_key IS NOT NULL  -- lists only for rows with a problem:
+      AND (pe.person_key IS NULL
+           OR CAST(s.acquired_at AS DATE) < pe.birth_date
+           OR CAST(s.acquired_at AS DATE) > pe.death_date + p.latest_slack_days)
 ),
 registry_matches AS (
     SELECT
@@ -30,5 +33,5 @@ SELECT
     coalesce(c.problems, []) AS problems,
     m.registry_hash,
     m.registry_source
-FROM (SELECT * FROM person_checks WHERE len(problems) > 0) AS c
+FROM person_checks AS c
 FULL OUTER JOIN registry_matches AS m ON m.row_k = c.row_k;

@@ -13,6 +13,9 @@ CREATE OR REPLACE TEMP MACRO dromos_number_problem(field_name, raw, value, lo, h
             THEN {'field': field_name, 'raw_value': CAST(raw AS VARCHAR),
                   'reason': printf('outside plausible range [%g, %g]', lo, hi)}
     END;
+-- True when a numeric field passes dromos_number_problem for sure (in range, or no value);
+-- false sends the row to the full checks.
+CREATE OR REPLACE TEMP MACRO dromos_value_ok(raw, value, lo, hi) AS (value >= lo AND value <= hi) OR raw IS NULL;
 -- Interval in ms from a raw value declared in ms (factor 1) or s (factor 1000); a value
 -- declared in ms that can only be seconds (see validation rules) is converted.
 CREATE OR REPLACE TEMP MACRO dromos_interval_ms(raw, factor, s_lo, s_hi) AS
