@@ -117,12 +117,13 @@ def _stage_rows(con, table: TableMapping) -> None:
         "procedure": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
         "diagnosis": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
     }[table.table]
-    con.execute(read_sql(_STAGE_SQL[table.table][0]), params)
+    for statement in con.extract_statements(read_sql(_STAGE_SQL[table.table][0])):
+        con.execute(statement.query, {k: v for k, v in params.items() if k in statement.named_parameters})
 
 
 def _stage_checks(con, scanned: sources.ScanResult) -> None:
     """Number the staged rows, check registry references, classify (``stage_outcome``)."""
-    _expose_staged(con, scanned.positional)
+    _check_positions(con, scanned.positional)
     scanned.finish(con)
     con.execute(read_sql(_STAGE_SQL[scanned.table][1]))
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
@@ -140,26 +141,20 @@ def _read_errors(path: Path, kind: str, mapping: Mapping):
         ) from exc
 
 
-def _expose_staged(con, positional: bool) -> None:
-    """View ``stage_checked`` over ``stage_typed``; positional sources number rows 1, 2, ...
+def _check_positions(con, positional: bool) -> None:
+    """Record where CSV row numbering starts (variable dromos_first_rowid, see macros.sql).
 
     A CSV source has no row_k: staging kept file order (no hash join before its output), so
-    a row's storage position is its position among the parsed rows. The positions of a new
-    table are one contiguous run; that is checked, never assumed.
+    a row's storage position in ``stage_typed`` is its position among the parsed rows. The
+    positions of a new table are one contiguous run; that is checked, never assumed.
     """
-    if not positional:
-        con.execute("CREATE OR REPLACE TEMP VIEW stage_checked AS SELECT * FROM stage_typed")
-        return
     first, last, n = con.execute("SELECT min(rowid), max(rowid), count(*) FROM stage_typed").fetchone()
-    if n and last - first + 1 != n:
+    if positional and n and last - first + 1 != n:
         raise RegistryError(
             f"internal error: the {n} staged rows do not sit in one run of positions "
             f"({first}..{last}); nothing was loaded. Please report this"
         )
-    con.execute(
-        "CREATE OR REPLACE TEMP VIEW stage_checked AS "
-        f"SELECT * REPLACE (rowid - {int(first or 0)} + 1 AS row_k) FROM stage_typed"
-    )
+    con.execute("SET VARIABLE dromos_first_rowid = ?", [int(first or 0)])
 
 
 def _write_outcomes(con, table: str, source_id: str, rejected: list) -> tuple[int, int, int, int]:

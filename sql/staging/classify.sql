@@ -1,7 +1,7 @@
 -- Classify staged records: load, duplicate or quarantine, and number the exceptions.
 -- Grain: one row per staged record that is NOT simply loaded (problems, a key already in the
 -- registry, a key repeated in the file) or that was repaired; every other record loads.
--- Input: stage_checked (row_k, dedup_key (a row of the key columns), problems, repairs,
+-- Input: stage_checked (row_k, dedup_key (a row of the key columns), key_hash, problems, repairs,
 -- content_hash, ...),
 -- stage_refs (row_k, problems, registry_hash, registry_source: registry references of the
 -- few records that have them) and skip_offset (k_start, lines_before): the source
@@ -11,7 +11,7 @@
 -- content is identical and is quarantined as a conflict otherwise (nothing is overwritten).
 CREATE OR REPLACE TEMP TABLE stage_outcome AS
 WITH clean_repeats AS (
-    SELECT hash(dedup_key) AS key_hash
+    SELECT key_hash
     FROM stage_checked
     WHERE len(problems) = 0
     GROUP BY 1
@@ -27,7 +27,7 @@ candidates AS (
     WHERE len(c.problems) > 0
        OR r.row_k IS NOT NULL
        OR len(c.repairs) > 0
-       OR (len(c.problems) = 0 AND hash(c.dedup_key) IN (SELECT key_hash FROM clean_repeats))
+       OR (len(c.problems) = 0 AND c.key_hash IN (SELECT key_hash FROM clean_repeats))
 ),
 ranked AS (
     SELECT

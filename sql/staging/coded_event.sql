@@ -27,9 +27,7 @@ checked AS (
             dromos_problem('date', t.date_raw, dromos_text(t.date_raw) IS NOT NULL AND t.date IS NULL, 'unparseable date'),
             dromos_problem('date', t.date_raw, t.date < p.earliest_date OR t.date > p.latest_date, 'date out of range'),
             dromos_problem('code', t.code, t.code IS NULL, 'missing required value')
-        ], lambda x: x IS NOT NULL) END AS problems,
-        row(t.person_key, t.date, t.code_system, t.code) AS dedup_key,
-        hash(t.person_key, t.date, t.code_system, t.code) AS content_hash
+        ], lambda x: x IS NOT NULL) END AS problems
     FROM typed AS t
     CROSS JOIN ingest_param AS p
 )
@@ -37,3 +35,14 @@ SELECT
     c.* EXCLUDE (person_key_raw, date_raw, line_problem, line_raw),
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
 FROM checked AS c;
+
+-- The staged rows as the checks see them (classify.sql): the record's row_k (its position for a
+-- CSV source, see loader._check_positions), its key (and a hash of it) and a hash of its content,
+-- computed when used.
+CREATE OR REPLACE TEMP VIEW stage_checked AS
+SELECT
+    * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    row(person_key, date, code_system, code) AS dedup_key,
+    hash(person_key, date, code_system, code) AS key_hash,
+    hash(person_key, date, code_system, code) AS content_hash
+FROM stage_typed;

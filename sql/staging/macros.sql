@@ -50,3 +50,7 @@ CREATE OR REPLACE TEMP MACRO dromos_split(x, sep) AS
 -- cohort/ingest/sources.py). Such a line's other checks are left out: its fields are shifted.
 CREATE OR REPLACE TEMP MACRO dromos_line_problem(problem, raw) AS
     CASE WHEN problem IS NOT NULL THEN {'field': CAST(NULL AS VARCHAR), 'raw_value': raw, 'reason': problem} END;
+-- The record number of a staged row: its row_k, or (CSV, no row_k) its position in stage_typed,
+-- from the first storage position the loader recorded in variable dromos_first_rowid.
+CREATE OR REPLACE TEMP MACRO dromos_row_k(row_k, position) AS
+    coalesce(row_k, position - getvariable('dromos_first_rowid') + 1);

@@ -54,12 +54,21 @@ checked AS (
         CASE WHEN t.f0 IS NOT NULL THEN [t.f0]
              WHEN coalesce(f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12) IS NULL THEN []
              ELSE list_filter([f1, f2, f3, f4, f5, f6, f7, f8, f9, f10, f11, f12], lambda x: x IS NOT NULL)
-        END AS problems,
-        hash(t.person_key, t.birth_date, t.sex, t.site, t.death_date, t.followup_end) AS content_hash
+        END AS problems
     FROM found AS t
 )
 SELECT
     c.*,
-    row(c.person_key) AS dedup_key,
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
 FROM checked AS c;
+
+-- The staged rows as the checks see them (classify.sql): the record's row_k (its position for a
+-- CSV source, see loader._check_positions), its key (and a hash of it) and a hash of its content,
+-- computed when used.
+CREATE OR REPLACE TEMP VIEW stage_checked AS
+SELECT
+    * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    row(person_key) AS dedup_key,
+    hash(person_key) AS key_hash,
+    hash(person_key, birth_date, sex, site, death_date, followup_end) AS content_hash
+FROM stage_typed;

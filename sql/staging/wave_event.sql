@@ -38,7 +38,16 @@ SELECT
          WHEN coalesce(f1, f2, f3, f4) IS NULL THEN []
          ELSE list_filter([f1, f2, f3, f4], lambda x: x IS NOT NULL)
     END AS problems,
-    CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs,
-    row(ecg_key, t_ms, kind) AS dedup_key,
-    hash(ecg_key, t_ms, kind) AS content_hash
+    CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
 FROM found;
+
+-- The staged rows as the checks see them (classify.sql): the record's row_k (its position for a
+-- CSV source, see loader._check_positions), its key (and a hash of it) and a hash of its content,
+-- computed when used.
+CREATE OR REPLACE TEMP VIEW stage_checked AS
+SELECT
+    * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    row(ecg_key, t_ms, kind) AS dedup_key,
+    hash(ecg_key, t_ms, kind) AS key_hash,
+    hash(ecg_key, t_ms, kind) AS content_hash
+FROM stage_typed;
