@@ -23,14 +23,18 @@ TABLE_OF_FILE = {
 }
 
 
-@pytest.fixture(scope="module")
-def defective(tmp_path_factory):
-    out = tmp_path_factory.mktemp("synth_defects")
-    generate(out, persons=1500, seed=5, fmt="csv", defects=0.03)
+def _load_defective(out, persons: int, seed: int, rate: float):
+    generate(out, persons=persons, seed=seed, fmt="csv", defects=rate)
     con = connect(out / "registry.duckdb")
     results = ingest(con, [out])
-    yield out, con, {r.path.name: r for r in results}
-    con.close()
+    return out, con, {r.path.name: r for r in results}
+
+
+@pytest.fixture(scope="module")
+def defective(tmp_path_factory):
+    loaded = _load_defective(tmp_path_factory.mktemp("synth_defects"), 1500, 5, 0.03)
+    yield loaded
+    loaded[1].close()
 
 
 def _outcomes(con, source_id: str) -> dict[str, set[int]]:
@@ -42,7 +46,10 @@ def _outcomes(con, source_id: str) -> dict[str, set[int]]:
 
 
 def test_counts_match_the_generator_manifest(defective):
-    out, con, results = defective
+    _check_counts(*defective)
+
+
+def _check_counts(out, con, results):
     manifest = json.loads((out / "truth" / "manifest.json").read_text())
     rows_written = {f["path"]: f["rows"] for f in manifest["files"]}
     for name, result in results.items():
@@ -53,7 +60,10 @@ def test_counts_match_the_generator_manifest(defective):
 
 
 def test_every_injected_defect_has_its_expected_outcome(defective):
-    out, con, results = defective
+    _check_defect_outcomes(*defective)
+
+
+def _check_defect_outcomes(out, con, results):
     defects = pd.read_csv(out / "truth" / "defects.csv")
     assert set(defects["kind"]) >= {
         "duplicate_row", "resent_confirmed", "pr_in_seconds", "impossible_value",
@@ -66,7 +76,10 @@ def test_every_injected_defect_has_its_expected_outcome(defective):
 
 
 def test_nothing_else_is_lost(defective):
-    out, con, results = defective
+    _check_nothing_else_lost(*defective)
+
+
+def _check_nothing_else_lost(out, con, results):
     defects = pd.read_csv(out / "truth" / "defects.csv")
     for name in ("persons.csv", "ecgs.csv"):
         got = _outcomes(con, results[name].source_id)
@@ -88,6 +101,18 @@ def test_nothing_else_is_lost(defective):
     ).fetchall()
     for tracing, reason in waves:
         assert reason.startswith("unknown tracing") and tracing not in loaded_tracings
+
+
+@pytest.mark.scale
+def test_defects_round_trip_in_exports_read_on_several_threads(tmp_path):
+    """Exports of tens of MB are read in parallel blocks; records must keep their numbers."""
+    out, con, results = _load_defective(tmp_path, 60_000, 11, 0.005)
+    try:
+        _check_counts(out, con, results)
+        _check_defect_outcomes(out, con, results)
+        _check_nothing_else_lost(out, con, results)
+    finally:
+        con.close()
 
 
 def test_clean_export_loads_every_row(tmp_path):
