@@ -241,4 +241,4 @@ def load_fhir_file(con, path: Path, *, mapping: Mapping, key: bytes | None, rule
         result.preset_rejects = rejected
         return result
 
-    return load(con, path, scan, table_mapping, mapping, key, rules, lambda: (sha256, []), "fhir")
+    return load(con, path, scan, table_mapping, mapping, key, rules, (sha256, []), "fhir")

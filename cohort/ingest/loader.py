@@ -13,7 +13,6 @@ import datetime as dt
 import time
 import tomllib
 from collections.abc import Callable, Iterable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -225,17 +224,14 @@ def load_file(
     table_mapping = mapping.tables[table] if table else mapping.table_for(path)
     if table and table not in mapping.tables:
         raise MappingError(f"mapping {mapping.mapping_id} has no [table.{table}] section")
-    # The file's digest (needed only once its rows are staged) is taken on a second thread
-    # while DuckDB reads the file.
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="dromos-digest") as pool:
-        digest = pool.submit(sources.file_digest, path)
+    digest = sources.file_digest(path)
 
-        def scan() -> sources.ScanResult:
-            if kind == "csv":
-                return sources.scan_csv(con, path, mapping, table_mapping)
-            return sources.scan_parquet(con, path, table_mapping)
+    def scan() -> sources.ScanResult:
+        if kind == "csv":
+            return sources.scan_csv(con, path, mapping, table_mapping)
+        return sources.scan_parquet(con, path, table_mapping)
 
-        return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, digest.result, kind)
+    return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, digest, kind)
 
 
 def _load_scanned(
@@ -246,17 +242,21 @@ def _load_scanned(
     mapping: Mapping,
     key: bytes | None,
     rules: dict,
-    digest: Callable[[], tuple[str, list[int]]],
+    digest: tuple[str, list[int]],
     kind: str,
 ) -> LoadResult:
     """Run scan -> stage -> classify -> write -> log inside one transaction.
 
-    ``digest()`` gives the file's sha256 and empty lines; content loaded before (same sha256,
-    same table) is rolled back after staging and reported as skipped.
+    ``digest`` is the file's sha256 and its empty lines (:func:`sources.file_digest`); content
+    loaded before (same sha256, same table) loads nothing and is reported as skipped.
     """
     started = time.perf_counter()
     table = table_mapping.table
+    sha256, empty_lines = digest
+    source_id = f"{table}:{sha256[:16]}"
     ensure_schema(con)
+    if con.execute("SELECT 1 FROM load_log WHERE source_id = ?", [source_id]).fetchone():
+        return LoadResult(path, table, source_id, 0, 0, 0, 0, 0, 0.0, skipped=True)
     check = key_check(key)
     _check_pseudonym_consistency(con, check, path)
     con.execute("BEGIN TRANSACTION")
@@ -264,14 +264,8 @@ def _load_scanned(
         _prepare_session(con, rules, table_mapping, key)
         with _read_errors(path, kind, mapping):  # the file itself is read while staging
             scanned = scan()
+            scanned.empty_lines = empty_lines
             _stage_rows(con, table_mapping)
-        sha256, scanned.empty_lines = digest()
-        source_id = f"{table}:{sha256[:16]}"
-        if con.execute("SELECT 1 FROM load_log WHERE source_id = ?", [source_id]).fetchone():
-            con.execute("ROLLBACK")  # same content loaded before: nothing new, nothing logged again
-            _drop_temporaries(con)
-            return LoadResult(path, table, source_id, 0, 0, 0, 0, 0, 0.0, skipped=True)
-        with _read_errors(path, kind, mapping):
             _stage_checks(con, scanned)
         staged = con.execute("SELECT count(*) FROM stage_checked").fetchone()[0]
         if staged == 0 and scanned.rejected:
