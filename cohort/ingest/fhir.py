@@ -227,7 +227,7 @@ def load_fhir_file(con, path: Path, *, mapping: Mapping, key: bytes | None, rule
     resource_type = resource_type_of(path)
     table = RESOURCE_TABLES[resource_type]
     table_mapping = _table_mapping(table)
-    sha256, _ = sources.file_digest(path)
+    sha256 = sources.file_sha256(path)
     columns = ["row_k", *CANONICAL_COLUMNS[table]]
 
     def scan() -> sources.ScanResult:
@@ -241,4 +241,4 @@ def load_fhir_file(con, path: Path, *, mapping: Mapping, key: bytes | None, rule
         result.preset_rejects = rejected
         return result
 
-    return load(con, path, scan, table_mapping, mapping, key, rules, (sha256, []), "fhir")
+    return load(con, path, scan, table_mapping, mapping, key, rules, sha256, "fhir")

@@ -126,6 +126,18 @@ def _stage_checks(con, scanned: sources.ScanResult) -> None:
     scanned.finish(con)
     con.execute(read_sql(_STAGE_SQL[scanned.table][1]))
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
+    # Records are numbered by file line: empty lines (skipped by the reader) are looked for only
+    # when some record will be reported, which spares a pass over a clean file.
+    if scanned.path is not None and _any_reported(con):
+        scanned.empty_lines = sources.empty_lines_of(scanned.path)
+        if scanned.empty_lines:
+            scanned.write_skip_offset(con)
+            con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
+
+
+def _any_reported(con) -> bool:
+    """True when some staged record is quarantined, duplicate or repaired (it gets a number)."""
+    return con.execute("SELECT EXISTS (SELECT 1 FROM stage_outcome)").fetchone()[0]
 
 
 @contextlib.contextmanager
@@ -224,14 +236,14 @@ def load_file(
     table_mapping = mapping.tables[table] if table else mapping.table_for(path)
     if table and table not in mapping.tables:
         raise MappingError(f"mapping {mapping.mapping_id} has no [table.{table}] section")
-    digest = sources.file_digest(path)
+    sha256 = sources.file_sha256(path)
 
     def scan() -> sources.ScanResult:
         if kind == "csv":
             return sources.scan_csv(con, path, mapping, table_mapping)
         return sources.scan_parquet(con, path, table_mapping)
 
-    return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, digest, kind)
+    return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, sha256, kind)
 
 
 def _load_scanned(
@@ -242,17 +254,15 @@ def _load_scanned(
     mapping: Mapping,
     key: bytes | None,
     rules: dict,
-    digest: tuple[str, list[int]],
+    sha256: str,
     kind: str,
 ) -> LoadResult:
     """Run scan -> stage -> classify -> write -> log inside one transaction.
 
-    ``digest`` is the file's sha256 and its empty lines (:func:`sources.file_digest`); content
-    loaded before (same sha256, same table) loads nothing and is reported as skipped.
+    Content loaded before (same ``sha256``, same table) loads nothing and is reported as skipped.
     """
     started = time.perf_counter()
     table = table_mapping.table
-    sha256, empty_lines = digest
     source_id = f"{table}:{sha256[:16]}"
     ensure_schema(con)
     if con.execute("SELECT 1 FROM load_log WHERE source_id = ?", [source_id]).fetchone():
@@ -264,7 +274,6 @@ def _load_scanned(
         _prepare_session(con, rules, table_mapping, key)
         with _read_errors(path, kind, mapping):  # the file itself is read while staging
             scanned = scan()
-            scanned.empty_lines = empty_lines
             _stage_rows(con, table_mapping)
             _stage_checks(con, scanned)
         staged = con.execute("SELECT count(*) FROM stage_checked").fetchone()[0]

@@ -27,22 +27,20 @@ class ScanResult:
     kind: str  # csv | parquet | fhir
     table: str
     sha256: str = ""
+    path: Path | None = None
     header_lines: int = 0
-    empty_lines: list[int] = field(default_factory=list)
+    empty_lines: list[int] | None = None
+    """1-based numbers of the file's empty lines; None until looked for (see loader)."""
     rejected: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     """(record, field, raw line, reason) of lines the reader could not split into fields."""
     preset_rejects: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     """Lines a Python reader (FHIR) rejected itself, numbered as records already."""
     positional: bool = False
     """True when ``src`` has no row_k: a staged row's record is its position (CSV)."""
+    reject_lines: list[int] = field(default_factory=list)
 
     def finish(self, con) -> None:
-        """After staging read the file: collect rejected lines, build table ``skip_offset``.
-
-        ``skip_offset(k_start, lines_before)``: parsed rows from the k_start-th on sit
-        ``lines_before`` lines further down the file than their position (header, empty and
-        rejected lines are not parsed; one record per line).
-        """
+        """After staging read the file: collect rejected lines, build table ``skip_offset``."""
         rejects = []
         if self.kind == "csv":
             rejects = con.execute(
@@ -56,7 +54,15 @@ class ScanResult:
             (line - self.header_lines, column if "ENCODING" in kinds else None, raw, _reject_reason(kinds))
             for line, column, raw, kinds in rejects
         ] + list(self.preset_rejects)
-        skipped = sorted({line for line, *_ in rejects} | set(self.empty_lines) | set(range(1, self.header_lines + 1)))
+        self.reject_lines = [line for line, *_ in rejects]
+        self.write_skip_offset(con)
+
+    def write_skip_offset(self, con) -> None:
+        """Table ``skip_offset(k_start, lines_before)``: parsed rows from the k_start-th on sit
+        ``lines_before`` lines further down the file than their position (header, empty and
+        rejected lines are not parsed; one record per line)."""
+        skipped = sorted(set(self.reject_lines) | set(self.empty_lines or ())
+                         | set(range(1, self.header_lines + 1)))
         # consecutive skipped lines share a k_start: the last (largest count) applies
         offsets = list({line - j + 1: j for j, line in enumerate(skipped, start=1)}.items())
         con.execute("CREATE OR REPLACE TEMP TABLE skip_offset (k_start BIGINT, lines_before BIGINT)")
@@ -64,19 +70,23 @@ class ScanResult:
             con.executemany("INSERT INTO skip_offset VALUES (?, ?)", offsets)
 
 
+def file_sha256(path: Path) -> str:
+    """SHA-256 of the file's bytes (hex)."""
+    with path.open("rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest()
+
+
 # A newline followed by an empty line (LF or CRLF); zero-width, so runs of empty lines all match.
 _BEFORE_EMPTY_LINE = re.compile(b"\n(?=\r?\n)")
 
 
-def file_digest(path: Path) -> tuple[str, list[int]]:
-    """SHA-256 of the file and the 1-based numbers of its empty lines (one pass)."""
-    digest = hashlib.sha256()
+def empty_lines_of(path: Path) -> list[int]:
+    """The 1-based numbers of the file's empty lines (the CSV reader skips them)."""
     empty_lines: list[int] = []
     line_no = 1  # number of the line the chunk starts in
     previous_end = b"\n"  # a file starting with a newline has an empty first line
     with path.open("rb") as handle:
         while chunk := handle.read(_CHUNK):
-            digest.update(chunk)
             data = previous_end + chunk
             seen, newlines = 0, 0
             for hit in _BEFORE_EMPTY_LINE.finditer(data):
@@ -85,7 +95,7 @@ def file_digest(path: Path) -> tuple[str, list[int]]:
                 empty_lines.append(line_no + newlines - 1)
             line_no += chunk.count(b"\n")
             previous_end = chunk[-1:]
-    return digest.hexdigest(), sorted(set(empty_lines))
+    return sorted(set(empty_lines))
 
 
 def source_kind(path: Path) -> str:
@@ -205,7 +215,7 @@ def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping) -> ScanResu
         """
     )
     _create_src_view(con, "raw_numbered", table, set(), (header[-1], extra, options["delimiter"]))
-    return ScanResult(kind="csv", table=table.table, header_lines=header_lines, positional=True)
+    return ScanResult(kind="csv", table=table.table, path=path, header_lines=header_lines, positional=True)
 
 
 def _reject_reason(error_types: str) -> str:

@@ -321,3 +321,19 @@ def test_records_keep_file_order_in_a_file_read_on_several_threads(registry, tmp
     duplicate = registry.execute("SELECT record, reason FROM duplicate").fetchall()
     assert duplicate == [(repeated_at, "repeats an earlier row of this file")]
     _assert_log_reconciles(registry)
+
+
+def test_record_numbers_count_empty_lines(registry, tmp_path):
+    """A record is numbered by its file line minus the header; empty lines are not records but
+    still count as lines (common practice, no source)."""
+    path = tmp_path / "persons.csv"
+    path.write_text(
+        ",".join(PERSON_HEADER) + "\n"
+        "P1,1950-01-01,M,s,,2024-12-31\n\n\n"
+        "P2,19xx-01-01,F,s,,2024-12-31\n"  # file line 5: record 4
+        "P3,1960-01-01,F,s,,2024-12-31\n",
+        encoding="utf-8",
+    )
+    result = load_file(registry, path)
+    assert (result.rows_read, result.rows_loaded, result.rows_quarantined) == (3, 2, 1)
+    assert [(r[0], r[3]) for r in _quarantine(registry)] == [(4, "unparseable date")]
