@@ -106,18 +106,19 @@ SELECT
         CASE WHEN qrs_in_seconds THEN {'field': 'qrs_ms', 'raw_value': qrs_ms_raw, 'repaired_value': CAST(qrs_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
         CASE WHEN qt_in_seconds THEN {'field': 'qt_ms', 'raw_value': qt_ms_raw, 'repaired_value': CAST(qt_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
         CASE WHEN qtc_in_seconds THEN {'field': 'qtc_ms', 'raw_value': qtc_ms_raw, 'repaired_value': CAST(qtc_ms AS VARCHAR), 'rule': 'interval given in seconds'} END
-    ], lambda x: x IS NOT NULL) ELSE [] END AS repairs
+    ], lambda x: x IS NOT NULL) ELSE [] END AS repairs,
+    -- stored (not left to the view): classify.sql then never reads the statement lists
+    hash(c.person_key, c.acquired_at, c.site, c.ventricular_rate, c.atrial_rate, c.pr_ms, c.qrs_ms,
+         c.qt_ms, c.qtc_ms, dromos_axis(c.p_axis_value), dromos_axis(c.qrs_axis_value),
+         dromos_axis(c.t_axis_value), c.statements, c.statement_codes) AS content_hash
 FROM found AS c
 CROSS JOIN ingest_param AS p;
 
 -- The staged rows as the checks see them (classify.sql): the record's row_k (its position for a
--- CSV source, see loader._check_positions), its key (and a hash of it) and a hash of its content,
--- computed when used.
+-- CSV source, see loader._check_positions) and its key (and a hash of it), computed when used.
 CREATE OR REPLACE TEMP VIEW stage_checked AS
 SELECT
     * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
     row(ecg_key, read_kind) AS dedup_key,
-    hash(ecg_key, read_kind) AS key_hash,
-    hash(person_key, acquired_at, site, ventricular_rate, atrial_rate, pr_ms, qrs_ms, qt_ms, qtc_ms,
-         p_axis, qrs_axis, t_axis, statements, statement_codes) AS content_hash
+    hash(ecg_key, read_kind) AS key_hash
 FROM stage_typed;
