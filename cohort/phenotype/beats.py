@@ -323,10 +323,10 @@ def _local(values: list[float], keep: list[bool], w: int, stat) -> list[float]:
         pool = sorted(v for v, k in zip(values, keep, strict=True) if k)
         fallback = stat(pool) if pool else stat(sorted(values))
         stats = [fallback if x is None else x for x in stats]
-    last = n - size
-    if last == 0:
+    if n == size:
         return stats * n
-    return [stats[min(max(0, i - w), last)] for i in range(n)]
+    # n > 2w+1: the first w positions share the first window, the last w the last one
+    return stats[:1] * w + stats + stats[-1:] * w
 
 
 def _densest(xs: list[float], width: float) -> tuple[int, float]:
@@ -417,10 +417,11 @@ def _expected_pp(iv: list[float], r: BeatRules) -> list[float]:
     """
     w = r.atrial_window
     long_cycle = _bigeminy_cycle(iv, r)
+    local_median = None  # e1 when it is the local median of all intervals
     if long_cycle is not None:
         e1 = [long_cycle] * len(iv)
     else:
-        e1 = _local(iv, [True] * len(iv), w, _median_sorted)
+        e1 = local_median = _local(iv, [True] * len(iv), w, _median_sorted)
         explained = _explained(iv, e1, r)
         if explained < len(iv):  # only then can another candidate do better
             cap = 1.5 * _upper_quartile_sorted(sorted(iv))
@@ -434,6 +435,8 @@ def _expected_pp(iv: list[float], r: BeatRules) -> list[float]:
     ]
     if not any(clean):
         return e1
+    if local_median is not None and all(clean):
+        return local_median  # the second pass would repeat the same computation
     e2 = _local(iv, clean, w, _median_sorted)
     # where the window holds no clean interval, _local fell back to the global clean median
     return e2
@@ -514,7 +517,9 @@ def _analyse_atrium(p: list[float], r: BeatRules, q: list[float] | None = None,
         if t in forced_set:
             _append(at, t, e, premature=False, inferred=True)
             continue
-        if _is_short(gap, e, None if nxt is None else nxt - t, e_next, r):
+        # _is_short's first test inline: most P waves are not early
+        nxt_gap = None if nxt is None else nxt - t
+        if gap < r.premature_fraction * e and _is_short(gap, e, nxt_gap, e_next, r):
             if _extra_after_premature(at, t, p[i + 1: i + 4], e, ctx):
                 _append(at, t, e, premature=True)
                 at.artefacts.append(p[i + 1])
@@ -524,7 +529,7 @@ def _analyse_atrium(p: list[float], r: BeatRules, q: list[float] | None = None,
                 continue
             _append(at, t, e, premature=True)
             continue
-        if not at.premature[-1]:
+        if not at.premature[-1] and gap / e >= 1.5:  # else round(gap / e) < 2: nothing missed
             _infer_missed(at, gap, e, r)
         _append(at, t, e, premature=False)
     _summarise_atrium(at, r)
@@ -1520,15 +1525,20 @@ def classify_strip(p_ms: Any, qrs_ms: Any, *, rules: BeatRules | str | Path | No
     return classify_sorted(p, q, r, dropped=p_bad + q_bad)
 
 
-def classify_sorted(p: list[float], q: list[float], r: BeatRules, *, dropped: int = 0) -> StripResult:
-    """``classify_strip`` on finite, ascending onset lists (the batch entry point)."""
+def classify_sorted(p: list[float], q: list[float], r: BeatRules, *, dropped: int = 0,
+                    p_table: bool = True) -> StripResult:
+    """``classify_strip`` on finite, ascending onset lists (the batch entry point).
+
+    ``p_table=False`` leaves ``p_waves`` empty (the batch stores no per-P rows; building them
+    is a noticeable share of the work); every other field is the same.
+    """
     n_p_raw, n_q_raw = len(p), len(q)
     p, p_dup = _merge_close(p, r.p_duplicate_ms)
     q, q_dup = _merge_close(q, r.qrs_duplicate_ms)
     notes = _input_notes(dropped, p_dup, q_dup)
     short = _insufficient(p, q, None, r)
     if short:
-        return _indeterminate(p, q, short, notes, r, n_p_raw, n_q_raw)
+        return _indeterminate(p, q, short, notes, r, n_p_raw, n_q_raw, p_table=p_table)
     at = _analyse_atrium(p, r, q)
     first_pass = _first_pass(at, q, r)
     slots = _orphan_slots(at, q, r, first_pass) if len(at.t) >= 2 else ()
@@ -1540,18 +1550,18 @@ def classify_sorted(p: list[float], q: list[float], r: BeatRules, *, dropped: in
         first_pass = _first_pass(at, q, r)
     short = _insufficient(p, q, at, r)
     if short:
-        return _indeterminate(p, q, short, notes, r, n_p_raw, n_q_raw, at)
+        return _indeterminate(p, q, short, notes, r, n_p_raw, n_q_raw, at, p_table=p_table)
     m = _match(at, q, r, first_pass)
     f = _features(at, m, q, r)
     rates = (_bpm(at.cycle_ms), _ventricular_rate(q))
     ix = _index_rows(at)
     dec = _decide(at, m, f, q, rates[0], r, ix)
-    table = _p_table(at, m, q, dec)
+    table = _p_table(at, m, q, dec) if p_table else []
     ratio, groups = _ratios(f, dec.pattern)
     reasons = dec.reasons + notes + _artefact_notes(at, m, f)
     pr_series = () if dec.dissociated else tuple(f.pr_all)
     pr_med = None if dec.dissociated else f.pr_med
-    not_conducted = sum(1 for w in table if w.conducted is False)
+    not_conducted = _n_not_conducted(at, m, dec)
     return StripResult(
         pattern=dec.pattern, ratio=ratio, group_ratios=groups, atrial_rate_bpm=rates[0],
         ventricular_rate_bpm=rates[1], escape_rate_bpm=dec.escape_rate, pr_series_ms=pr_series,
@@ -1559,6 +1569,15 @@ def classify_sorted(p: list[float], q: list[float], r: BeatRules, *, dropped: in
         n_p=n_p_raw, n_qrs=n_q_raw, n_not_conducted=not_conducted, reasons=tuple(reasons),
         sentence=dec.sentence, rules_id=r.rules_id,
     )
+
+
+def _n_not_conducted(at: _Atrium, m: _Match, dec: _Decision) -> int:
+    """P waves whose per-P row (``_p_row``) says not conducted: every analysed P when the rhythms
+    are dissociated, else those without a QRS that the strip end does not cut off (artefacts
+    never count)."""
+    if dec.dissociated:
+        return len(at.t)
+    return sum(1 for j, cut in zip(m.q_of_p, m.unassessable, strict=True) if j < 0 and not cut)
 
 
 def _index_rows(at: _Atrium) -> list[int]:
@@ -1605,9 +1624,11 @@ def _artefact_notes(at: _Atrium, m: _Match, f: _Features) -> list[str]:
 
 
 def _indeterminate(p: list[float], q: list[float], why: tuple[str, str], notes: list[str],
-                   r: BeatRules, n_p: int, n_q: int, at: _Atrium | None = None) -> StripResult:
+                   r: BeatRules, n_p: int, n_q: int, at: _Atrium | None = None, *,
+                   p_table: bool = True) -> StripResult:
     code, sentence = why
-    table = tuple(PWave(i, t, "unassessable", None, None, None, "detected") for i, t in enumerate(p, 1))
+    table = tuple(PWave(i, t, "unassessable", None, None, None, "detected")
+                  for i, t in enumerate(p, 1)) if p_table else ()
     return StripResult(
         pattern="indeterminate", ratio=None, group_ratios=(),
         atrial_rate_bpm=_bpm(at.cycle_ms) if at else None, ventricular_rate_bpm=_ventricular_rate(q),

@@ -1,11 +1,12 @@
 """Beat-level AV conduction pattern of every strip in the registry (table ``beat_pattern``).
 
-``classify_registry(con)`` reads ``wave_event`` through DuckDB as Arrow columns (one query,
-ordered by strip, kind and time; ``sql/phenotype/beat_events.sql``), splits them into per-strip
-QRS and P runs with numpy, and writes one row per ``ecg_key`` into ``beat_pattern``
+``classify_registry(con)`` numbers the strips (``sql/phenotype/beat_strips.sql``), reads
+``wave_event`` through DuckDB as Arrow columns (one query, ordered by strip number, kind and
+time; ``sql/phenotype/beat_events.sql``), splits them into per-strip QRS and P runs with numpy,
+and writes one row per ``ecg_key`` into ``beat_pattern``
 (``sql/phenotype/beat_pattern_table.sql``).
 
-Speed: most registry strips are clean 1:1 conduction. Those are recognised and classified in
+Speed: many registry strips are clean 1:1 conduction. Those are recognised and classified in
 one vectorized pass over the concatenated arrays (``_fast_one_to_one``), under conditions
 strict enough that the per-strip classifier provably reaches the same result (every QRS
 between its P and the next P, all P-P intervals within +-10 % of the strip median, PR spread
@@ -80,16 +81,25 @@ def classify_registry(con, *, rules: BeatRules | str | None = None,
 
 
 def _read_strips(con) -> _Strips:
-    """Ordered events as numpy arrays with the QRS and P run boundaries of each strip."""
-    table = _arrow(con.sql(read_sql("phenotype/beat_events.sql")))
+    """Ordered events as numpy arrays with the QRS and P run boundaries of each strip.
+
+    The strips are numbered first (temporary table phen_beat_strip, one row per ecg_key), so
+    the events are sorted by integers and the keys are read once per strip, not per event.
+    """
+    con.execute("CREATE OR REPLACE TEMP TABLE phen_beat_strip AS "
+                + read_sql("phenotype/beat_strips.sql"))
+    try:
+        rows = con.execute("SELECT ecg_key FROM phen_beat_strip ORDER BY strip_no").fetchall()
+        table = _arrow(con.sql(read_sql("phenotype/beat_events.sql")))
+    finally:
+        con.execute("DROP TABLE IF EXISTS phen_beat_strip")
+    keys = [row[0] for row in rows]
     strip_no = table.column("strip_no").to_numpy().astype(np.int64)
     t = table.column("t_ms").to_numpy().astype(np.float64)
     is_p = table.column("is_p").to_numpy().astype(np.int64)
-    n = int(strip_no[-1]) + 1 if len(strip_no) else 0
+    n = len(keys)
     # rows are ordered by (strip, is_p, t): the run boundaries of key 2*strip + is_p
     bounds = np.searchsorted(2 * strip_no + is_p, np.arange(2 * n + 1))
-    first_rows = bounds[0:2 * n:2]
-    keys = table.column("ecg_key").take(pa.array(first_rows)).to_pylist() if n else []
     return _Strips(keys, t, bounds[0:2 * n:2], bounds[1:2 * n + 1:2], bounds[1:2 * n + 1:2],
                    bounds[2:2 * n + 2:2])
 
@@ -113,26 +123,43 @@ def classify_strips(strips: _Strips, r: BeatRules, *, progress: ProgressFn | Non
                 cols[c][i] = v
     done = np.zeros(n, dtype=bool)
     done[fast["index"]] = True
-    slow = np.flatnonzero(~done).tolist()
-    t = strips.t.tolist() if slow else []
-    items = [(t[strips.p_start[i]:strips.p_end[i]], t[strips.q_start[i]:strips.q_end[i]])
-             for i in slow]
+    slow = np.flatnonzero(~done)
+    items = _slow_items(strips, slow)
     n_fast = len(fast["index"])
     if workers > 1 and len(items) >= _MIN_PARALLEL:
         rows = _rows_in_workers(items, r, workers, progress, n_fast, n)
     else:
         rows = []
         step = max(1, len(items) // 100)
-        for count, (p, q) in enumerate(items, start=1):
-            rows.append(_row(p, q, r))
+        for count, item in enumerate(items, start=1):
+            rows.append(_row(item, r))
             if progress and count % step == 0:
                 progress(n_fast + count, n)
-    for i, row in zip(slow, rows, strict=True):
+    for i, row in zip(slow.tolist(), rows, strict=True):
         for c, v in zip(_COLUMNS, row, strict=True):
             cols[c][i] = v
     if progress:
         progress(n, n)
     return cols
+
+
+def _slow_items(strips: _Strips, slow: np.ndarray) -> list[tuple[list, list, int]]:
+    """(P onsets, QRS onsets, non-finite onsets dropped) of the given strips, as Python lists.
+
+    Non-finite onsets (NaN sorts last in DuckDB, -inf first) are dropped for all strips at
+    once: the runs stay contiguous in the finite array, at positions counted by ``kept``.
+    """
+    if len(slow) == 0:
+        return []
+    finite = np.isfinite(strips.t)
+    kept = np.concatenate(([0], np.cumsum(finite)))
+    t = strips.t[finite].tolist()
+    ps, pe = kept[strips.p_start[slow]], kept[strips.p_end[slow]]
+    qs, qe = kept[strips.q_start[slow]], kept[strips.q_end[slow]]
+    raw = (strips.p_end[slow] - strips.p_start[slow]) + (strips.q_end[slow] - strips.q_start[slow])
+    dropped = raw - (pe - ps) - (qe - qs)
+    return [(t[a:b], t[c:d], n) for a, b, c, d, n in zip(
+        ps.tolist(), pe.tolist(), qs.tolist(), qe.tolist(), dropped.tolist(), strict=True)]
 
 
 def _rows_in_workers(items: list, r: BeatRules, workers: int, progress: ProgressFn | None,
@@ -152,22 +179,20 @@ def _rows_in_workers(items: list, r: BeatRules, workers: int, progress: Progress
 
 def _rows_of_chunk(args: tuple[list, BeatRules]) -> list[tuple]:
     chunk, r = args
-    return [_row(p, q, r) for p, q in chunk]
+    return [_row(item, r) for item in chunk]
 
 
-def _row(p: list[float], q: list[float], r: BeatRules) -> tuple:
-    """beat_pattern values (without key and rules id) of one strip, in _COLUMNS order."""
-    res = _classify_list(p, q, r)
+def _row(item: tuple[list, list, int], r: BeatRules) -> tuple:
+    """beat_pattern values (without key and rules id) of one strip, in _COLUMNS order.
+
+    ``item`` holds the strip's finite P and QRS onsets and how many non-finite ones were
+    dropped (see :func:`_slow_items`).
+    """
+    p, q, dropped = item
+    res = classify_sorted(p, q, r, dropped=dropped, p_table=False)
     return (res.pattern, res.ratio, res.atrial_rate_bpm, res.ventricular_rate_bpm,
             res.escape_rate_bpm, res.pr_median_ms, res.n_p, res.n_qrs, res.n_not_conducted,
             list(res.evidence))
-
-
-def _classify_list(p: list[float], q: list[float], r: BeatRules):
-    """Drop non-finite onsets (NaN sorts last in DuckDB) and classify."""
-    fp = [x for x in p if x == x and abs(x) != float("inf")]
-    fq = [x for x in q if x == x and abs(x) != float("inf")]
-    return classify_sorted(fp, fq, r, dropped=len(p) - len(fp) + len(q) - len(fq))
 
 
 # --------------------------------------------------------------------------------------------

@@ -43,30 +43,62 @@ slot AS (
         ('vc', 'not_assessable', 22)
     ) AS t(axis, category, slot)
 ),
-totals AS (
+-- Each category row flagged when it is a higher-grade AV block (rule file [av] higher_grade).
+flagged AS (
+    SELECT c.*, c.axis = 'av' AND list_contains(p.higher_grade, c.category) AS higher_grade
+    FROM cats AS c
+    CROSS JOIN param AS p
+),
+-- One aggregation per person: totals, the AV block summaries, and one list of structs for the
+-- wide columns (no sort: the lookups below go by slot number, and one list keeps slot and
+-- values aligned).
+per_person AS (
     SELECT
-        person_key,
-        sum(n_ecg) FILTER (WHERE axis = 'av') AS n_ecg,
-        min(first_date) FILTER (WHERE axis = 'av') AS first_ecg_date,
-        max(last_date) FILTER (WHERE axis = 'av') AS last_ecg_date,
-        min(first_date) FILTER (WHERE axis = 'rhythm' AND category = 'paced') AS first_paced_rhythm_date
-    FROM cats
-    GROUP BY person_key
+        c.person_key,
+        sum(c.n_ecg) FILTER (WHERE c.axis = 'av') AS n_ecg,
+        min(c.first_date) FILTER (WHERE c.axis = 'av') AS first_ecg_date,
+        max(c.last_date) FILTER (WHERE c.axis = 'av') AS last_ecg_date,
+        min(c.first_date) FILTER (WHERE c.axis = 'rhythm' AND c.category = 'paced')
+            AS first_paced_rhythm_date,
+        min(c.first_date) FILTER (WHERE c.higher_grade) AS first_higher_grade_ecg_date,
+        max(c.last_date) FILTER (WHERE c.higher_grade) AS last_higher_grade_ecg_date,
+        sum(c.n_ecg) FILTER (WHERE c.higher_grade) AS higher_grade_ecg_n,
+        min(c.first_date) FILTER (
+            WHERE c.axis = 'av' AND c.category IN ('first_degree', 'marked_first_degree')
+        ) AS first_first_degree_or_marked_ecg_date,
+        min(c.first_date) FILTER (
+            WHERE c.axis = 'av' AND (c.category IN ('first_degree', 'marked_first_degree', 'mobitz_i')
+                OR c.higher_grade)
+        ) AS first_av_block_ecg_date,
+        min(c.first_date) FILTER (WHERE c.axis = 'av' AND c.category = 'third_degree')
+            AS first_third_degree_ecg_date,
+        list({'slot': s.slot, 'first_date': c.first_date, 'n': c.n_ecg, 'persistent': c.persistent})
+            FILTER (WHERE s.slot IS NOT NULL) AS items
+    FROM flagged AS c
+    LEFT JOIN slot AS s ON s.axis = c.axis AND s.category = c.category
+    GROUP BY c.person_key
 ),
 listed AS (
     SELECT
-        c.person_key,
-        list(s.slot ORDER BY s.slot) AS slots,
-        list(c.first_date ORDER BY s.slot) AS firsts,
-        list(c.n_ecg ORDER BY s.slot) AS ns,
-        list(c.persistent ORDER BY s.slot) AS persistents
-    FROM cats AS c
-    JOIN slot AS s ON s.axis = c.axis AND s.category = c.category
-    GROUP BY c.person_key
+        * EXCLUDE (items),
+        list_transform(items, lambda x: x.slot) AS slots,
+        list_transform(items, lambda x: x.first_date) AS firsts,
+        list_transform(items, lambda x: x.n) AS ns,
+        list_transform(items, lambda x: x.persistent) AS persistents
+    FROM per_person
 ),
 wide AS (
     SELECT
-        t.person_key, t.n_ecg, t.first_ecg_date, t.last_ecg_date, t.first_paced_rhythm_date,
+        l.person_key, l.n_ecg, l.first_ecg_date, l.last_ecg_date, l.first_paced_rhythm_date,
+        l.first_av_block_ecg_date, l.first_first_degree_or_marked_ecg_date,
+        l.first_higher_grade_ecg_date, l.higher_grade_ecg_n,
+        coalesce(
+            l.higher_grade_ecg_n >= p.persist_min_ecgs
+            AND date_diff('day', l.first_higher_grade_ecg_date, l.last_higher_grade_ecg_date)
+                >= p.persist_min_days,
+            false
+        ) AS higher_grade_persistent,
+        l.first_third_degree_ecg_date,
         l.firsts[list_position(l.slots, 1)] AS av_short_pr_first_date,
         coalesce(l.ns[list_position(l.slots, 1)], 0) AS av_short_pr_n,
         coalesce(l.persistents[list_position(l.slots, 1)], false) AS av_short_pr_persistent,
@@ -133,36 +165,8 @@ wide AS (
         l.firsts[list_position(l.slots, 22)] AS vc_not_assessable_first_date,
         coalesce(l.ns[list_position(l.slots, 22)], 0) AS vc_not_assessable_n,
         coalesce(l.persistents[list_position(l.slots, 22)], false) AS vc_not_assessable_persistent
-    FROM totals AS t
-    LEFT JOIN listed AS l ON l.person_key = t.person_key
-),
-grouped AS (
-    SELECT
-        c.person_key,
-        min(c.first_date) FILTER (WHERE list_contains(p.higher_grade, c.category))
-            AS first_higher_grade_ecg_date,
-        coalesce(sum(c.n_ecg) FILTER (WHERE list_contains(p.higher_grade, c.category)), 0)
-            AS higher_grade_ecg_n,
-        coalesce(
-            sum(c.n_ecg) FILTER (WHERE list_contains(p.higher_grade, c.category)) >= p.persist_min_ecgs
-            AND date_diff(
-                'day',
-                min(c.first_date) FILTER (WHERE list_contains(p.higher_grade, c.category)),
-                max(c.last_date) FILTER (WHERE list_contains(p.higher_grade, c.category))
-            ) >= p.persist_min_days,
-            false
-        ) AS higher_grade_persistent,
-        min(c.first_date) FILTER (WHERE c.category IN ('first_degree', 'marked_first_degree'))
-            AS first_first_degree_or_marked_ecg_date,
-        min(c.first_date) FILTER (
-            WHERE c.category IN ('first_degree', 'marked_first_degree', 'mobitz_i')
-                OR list_contains(p.higher_grade, c.category)
-        ) AS first_av_block_ecg_date,
-        min(c.first_date) FILTER (WHERE c.category = 'third_degree') AS first_third_degree_ecg_date
-    FROM cats AS c
+    FROM listed AS l
     CROSS JOIN param AS p
-    WHERE c.axis = 'av'
-    GROUP BY c.person_key, p.persist_min_ecgs, p.persist_min_days
 ),
 dx AS (
     SELECT d.person_key, d.date, r.axis, r.category, r.is_higher_grade
@@ -279,12 +283,12 @@ SELECT
     w.vc_not_assessable_first_date,
     coalesce(w.vc_not_assessable_n, 0) AS vc_not_assessable_n,
     coalesce(w.vc_not_assessable_persistent, false) AS vc_not_assessable_persistent,
-    g.first_av_block_ecg_date,
-    g.first_first_degree_or_marked_ecg_date,
-    g.first_higher_grade_ecg_date,
-    coalesce(g.higher_grade_ecg_n, 0) AS higher_grade_ecg_n,
-    coalesce(g.higher_grade_persistent, false) AS higher_grade_persistent,
-    g.first_third_degree_ecg_date,
+    w.first_av_block_ecg_date,
+    w.first_first_degree_or_marked_ecg_date,
+    w.first_higher_grade_ecg_date,
+    coalesce(w.higher_grade_ecg_n, 0) AS higher_grade_ecg_n,
+    coalesce(w.higher_grade_persistent, false) AS higher_grade_persistent,
+    w.first_third_degree_ecg_date,
     x.first_av_block_dx_date,
     x.first_first_degree_dx_date,
     x.first_second_degree_dx_date,
@@ -305,7 +309,6 @@ SELECT
     pz.pacemaker_presence_dx_date
 FROM person AS pe
 LEFT JOIN wide AS w ON w.person_key = pe.person_key
-LEFT JOIN grouped AS g ON g.person_key = pe.person_key
 LEFT JOIN dx_person AS x ON x.person_key = pe.person_key
 LEFT JOIN pacemaker_procedure AS pp ON pp.person_key = pe.person_key
 LEFT JOIN pacemaker_presence AS pz ON pz.person_key = pe.person_key

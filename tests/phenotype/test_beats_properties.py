@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
-from cohort.phenotype.beats import FATES, QRS_ROLES, classify_strip
+from cohort.phenotype.beats import FATES, QRS_ROLES, classify_sorted, classify_strip, load_rules
 from cohort.vocabulary import BEAT_PATTERNS
 from tests.phenotype.test_beats import (
     independent,
@@ -54,6 +55,20 @@ def test_random_rhythms_never_crash(pp, rr, start):
     p = [start + sum(pp[: i + 1]) for i in range(len(pp))]
     q = [start + 50 + sum(rr[: i + 1]) for i in range(len(rr))]
     _check_valid(classify_strip(p, q), len(p), len(q))
+
+
+@PROPERTY
+@given(pp=intervals, rr=intervals, start=st.floats(0, 3000))
+def test_batch_result_without_p_table_matches_the_full_result(pp, rr, start):
+    # the batch skips the per-P rows; the count of non-conducted P waves must still be theirs
+    p = sorted(start + sum(pp[: i + 1]) for i in range(len(pp)))
+    q = sorted(start + 50 + sum(rr[: i + 1]) for i in range(len(rr)))
+    r = load_rules()
+    full = classify_sorted(p, q, r)
+    lean = classify_sorted(p, q, r, p_table=False)
+    assert lean.p_waves == ()
+    assert dataclasses.replace(lean, p_waves=full.p_waves) == full
+    assert full.n_not_conducted == sum(1 for w in full.p_waves if w.conducted is False)
 
 
 def _n(pp: float, duration: float = 10_000.0) -> int:
