@@ -34,7 +34,8 @@ def register(subparsers) -> None:
     parser.add_argument("--skip-beats", action="store_true", help="do not run the beat classifier")
     parser.add_argument(
         "--rebuild", action="store_true",
-        help="drop the phenotype tables of all rule sets first (after a Dromos upgrade)",
+        help="drop the phenotype tables of all rule sets first and classify every beat strip "
+             "again (after a Dromos upgrade)",
     )
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
     parser.set_defaults(func=run)

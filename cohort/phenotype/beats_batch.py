@@ -16,9 +16,12 @@ below twice the fixed-PR tolerance, no PR drift); every other strip goes through
 
 from __future__ import annotations
 
+import dataclasses
+import hashlib
 import multiprocessing
 from collections.abc import Callable
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -76,8 +79,63 @@ def classify_registry(con, *, rules: BeatRules | str | None = None,
     r = resolve_rules(rules)
     strips = _read_strips(con)
     columns = classify_strips(strips, r, progress=progress, workers=workers)
-    _write(con, strips.keys, columns, r.rules_id)
+    _write(con, strips.keys, columns, r)
     return len(strips.keys)
+
+
+def refresh_registry(con, *, rules: BeatRules | str | None = None,
+                     progress: ProgressFn | None = None, workers: int = 1) -> tuple[int, bool]:
+    """``classify_registry`` unless ``beat_pattern`` is up to date; (rows, reused).
+
+    Up to date means computed (``beat_run``) from the same wave events (fingerprint), the same
+    thresholds and the same classifier source, so re-running the phenotype (a second rule set,
+    a sensitivity analysis) does not classify every strip again.
+    """
+    r = resolve_rules(rules)
+    n = _up_to_date_rows(con, r)
+    if n is not None:
+        return n, True
+    return classify_registry(con, rules=r, progress=progress, workers=workers), False
+
+
+def _run_row(con, r: BeatRules, n_strips: int) -> dict:
+    """The beat_run row describing beat patterns computed now from ``wave_event``."""
+    waves, fingerprint = con.execute(read_sql("phenotype/wave_fingerprint.sql")).fetchone()
+    rules_text = repr(sorted(dataclasses.asdict(r).items()))
+    return {
+        "rules_id": r.rules_id,
+        "rules_fingerprint": hashlib.sha256(rules_text.encode("utf-8")).hexdigest(),
+        "classifier_fingerprint": _classifier_fingerprint(),
+        "wave_events": waves, "wave_fingerprint": fingerprint, "n_strips": n_strips,
+    }
+
+
+def _classifier_fingerprint() -> str:
+    """sha256 of the classifier's source (this module and beats.py): code changes invalidate."""
+    here = Path(__file__).resolve().parent
+    digest = hashlib.sha256()
+    for name in ("beats.py", "beats_batch.py"):
+        digest.update((here / name).read_bytes())
+    return digest.hexdigest()
+
+
+def _up_to_date_rows(con, r: BeatRules) -> int | None:
+    """Rows of beat_pattern when beat_run says they were computed from what is there now."""
+    present = {row[0] for row in con.execute(
+        "SELECT table_name FROM information_schema.tables WHERE table_schema = current_schema() "
+        "AND table_name IN ('beat_pattern', 'beat_run')").fetchall()}
+    if present != {"beat_pattern", "beat_run"}:
+        return None
+    stored = con.execute(
+        "SELECT rules_id, rules_fingerprint, classifier_fingerprint, wave_events, wave_fingerprint, "
+        "n_strips FROM beat_run").fetchall()
+    n = con.execute("SELECT count(*) FROM beat_pattern").fetchone()[0]
+    now = _run_row(con, r, n)
+    keys = ("rules_id", "rules_fingerprint", "classifier_fingerprint", "wave_events",
+            "wave_fingerprint", "n_strips")
+    if len(stored) != 1 or tuple(stored[0]) != tuple(now[k] for k in keys):
+        return None
+    return n
 
 
 def _read_strips(con) -> _Strips:
@@ -341,8 +399,10 @@ def _in_transaction(con) -> bool:
     return con.execute("SELECT txid_current()").fetchall()[0][0] == first
 
 
-def _write(con, keys: list[str], cols: dict, rules_id: str) -> None:
-    """Recreate beat_pattern and insert the rows, in one transaction (the caller's, if open)."""
+def _write(con, keys: list[str], cols: dict, r: BeatRules) -> None:
+    """Recreate beat_pattern (and its beat_run row) and insert the rows, in one transaction
+    (the caller's, if open)."""
+    rules_id = r.rules_id
     table = pa.table({
         "ecg_key": pa.array(keys, pa.string()),
         "pattern": pa.array(cols["pattern"], pa.string()),
@@ -365,6 +425,11 @@ def _write(con, keys: list[str], cols: dict, rules_id: str) -> None:
         con.register("_beat_pattern_rows", table)
         con.execute("INSERT INTO beat_pattern SELECT * FROM _beat_pattern_rows")
         con.unregister("_beat_pattern_rows")
+        run = _run_row(con, r, len(keys))
+        con.execute(read_sql("phenotype/beat_run_table.sql"))
+        con.execute(
+            "INSERT INTO beat_run VALUES ($rules_id, $rules_fingerprint, $classifier_fingerprint, "
+            "$wave_events, $wave_fingerprint, $n_strips, current_timestamp::TIMESTAMP)", run)
         if own:
             con.execute("COMMIT")
     except Exception:

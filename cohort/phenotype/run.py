@@ -235,8 +235,12 @@ def _classify_statements(con, rs: RuleSet) -> dict[str, int]:
     return {"n_distinct_statements": len(texts), "n_distinct_codes": len(codes)}
 
 
-def _run_beats(con, enabled: bool) -> str:
-    """Run the beat classifier (another module) when wave events exist; say what happened."""
+def _run_beats(con, enabled: bool, rebuild: bool = False) -> str:
+    """Run the beat classifier (another module) when wave events exist; say what happened.
+
+    Beat patterns still up to date (same wave events, beat rules and classifier) are reused
+    unless ``rebuild``.
+    """
     if not enabled:
         return "beat classifier skipped on request"
     if not _table_exists(con, "wave_event") or not con.execute(
@@ -249,7 +253,12 @@ def _run_beats(con, enabled: bool) -> str:
         if exc.name and exc.name.startswith("cohort.phenotype.beats"):
             return "beat classifier (cohort.phenotype.beats_batch) not available yet: skipped"
         raise
-    n = module.classify_registry(con)
+    if rebuild:
+        return f"beat classifier wrote {module.classify_registry(con)} beat_pattern rows"
+    n, reused = module.refresh_registry(con)
+    if reused:
+        return (f"beat patterns of {n} strips reused: wave events, beat rules and classifier "
+                "unchanged since they were computed")
     return f"beat classifier wrote {n} beat_pattern rows"
 
 
@@ -355,7 +364,8 @@ def run_phenotype(
     rules_id : rule set id in ``cohort/rules`` (e.g. ``default-v1``) or a path to a rule file.
     progress : a tqdm bar (``update``) or a callable ``progress(step, index, total)``.
     beats : run the beat classifier first when the registry has wave events.
-    rebuild : drop the phenotype tables of all rule sets first (after a schema change).
+    rebuild : drop the phenotype tables of all rule sets first (after a schema change) and
+        classify every beat strip again (otherwise patterns still up to date are reused).
 
     Returns
     -------
@@ -371,7 +381,7 @@ def run_phenotype(
     start = time.perf_counter()
     # The beat classifier manages its own writes, so it runs before our transaction.
     t0 = time.perf_counter()
-    notes.append(_run_beats(con, beats))
+    notes.append(_run_beats(con, beats, rebuild))
     timings["beats"] = time.perf_counter() - t0
     params = {"rule_set_id": rs.id}
     con.execute("BEGIN TRANSACTION")

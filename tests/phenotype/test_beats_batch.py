@@ -10,7 +10,12 @@ import pyarrow as pa
 import pytest
 
 from cohort.phenotype.beats import DEFAULT_RULES_PATH, classify_strip, load_rules
-from cohort.phenotype.beats_batch import _fast_one_to_one, _read_strips, classify_registry
+from cohort.phenotype.beats_batch import (
+    _fast_one_to_one,
+    _read_strips,
+    classify_registry,
+    refresh_registry,
+)
 from cohort.registry import ensure_schema
 from cohort.sqlfiles import read_sql
 from cohort.vocabulary import BEAT_PATTERNS
@@ -153,3 +158,40 @@ def test_worker_processes_give_the_same_rows(strips, monkeypatch):
     monkeypatch.setattr(batch, "_MIN_PARALLEL", 1)
     classify_registry(con, workers=2)
     assert con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall() == serial
+
+
+def test_patterns_are_reused_only_while_waves_rules_and_classifier_are_unchanged(strips, tmp_path):
+    """A second phenotype run (another rule set) must not classify every strip again, and any
+    change to what the patterns were computed from must (common practice, no source)."""
+    con = _registry(strips)
+    assert refresh_registry(con) == (len(strips), False)
+    before = con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall()
+    assert refresh_registry(con) == (len(strips), True)
+    assert con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall() == before
+    # one event fewer: the fingerprint changes and every strip is classified again
+    con.execute("DELETE FROM wave_event WHERE rowid = (SELECT min(rowid) FROM wave_event)")
+    assert refresh_registry(con) == (len(strips), False)
+    assert refresh_registry(con)[1]
+    # same rule id, other threshold: recomputed
+    text = DEFAULT_RULES_PATH.read_text(encoding="utf-8")
+    changed = re.sub(r"(?m)^p_duplicate_ms = 40.0", "p_duplicate_ms = 45.0", text)
+    assert changed != text
+    path = tmp_path / "beats-v1.toml"
+    path.write_text(changed, encoding="utf-8")
+    assert refresh_registry(con, rules=path) == (len(strips), False)
+    # a classifier change (its source fingerprint) invalidates too
+    con.execute("UPDATE beat_run SET classifier_fingerprint = 'older'")
+    assert refresh_registry(con, rules=path)[1] is False
+
+
+def test_a_second_phenotype_run_reuses_the_beat_patterns(strips):
+    from cohort.phenotype import run_phenotype
+
+    con = _registry(strips)
+    first = run_phenotype(con, "default-v1")
+    again = run_phenotype(con, "default-v1")
+    assert any("wrote" in note for note in first["notes"])
+    assert any("reused" in note for note in again["notes"])
+    assert first["av_category"] == again["av_category"]
+    forced = run_phenotype(con, "default-v1", rebuild=True)
+    assert any("wrote" in note for note in forced["notes"])
