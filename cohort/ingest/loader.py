@@ -238,12 +238,19 @@ def load_file(
         raise MappingError(f"mapping {mapping.mapping_id} has no [table.{table}] section")
     sha256 = sources.file_sha256(path)
 
-    def scan() -> sources.ScanResult:
+    def scan(parallel: bool = True) -> sources.ScanResult:
         if kind == "csv":
-            return sources.scan_csv(con, path, mapping, table_mapping)
+            return sources.scan_csv(con, path, mapping, table_mapping, parallel=parallel)
         return sources.scan_parquet(con, path, table_mapping)
 
-    return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, sha256, kind)
+    try:
+        return _load_scanned(con, path, scan, table_mapping, mapping, key, rules, sha256, kind)
+    except (InputFileError, duckdb.Error) as exc:
+        if not sources.needs_serial_read(exc):
+            raise
+    # quoted line breaks: the whole load again (it was rolled back), reading on one thread
+    return _load_scanned(con, path, lambda: scan(parallel=False), table_mapping, mapping, key,
+                         rules, sha256, kind)
 
 
 def _load_scanned(

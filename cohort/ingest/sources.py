@@ -182,7 +182,7 @@ def _extra_column(header: list[str]) -> str:
     return name
 
 
-def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping) -> ScanResult:
+def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping, *, parallel: bool = True) -> ScanResult:
     """Define ``src`` over DuckDB's ``read_csv`` of the file (read once, when staging runs).
 
     The file is read with one column more than its header and with padding of short lines, so
@@ -190,7 +190,8 @@ def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping) -> ScanResu
     otherwise accept a line with one extra empty field silently. ``src`` has no row_k:
     numbering rows with a window function would make DuckDB read the file on one thread.
     Staging keeps file order instead (no hash join before its output), and the loader numbers
-    the staged rows by position (``ScanResult.positional``).
+    the staged rows by position (``ScanResult.positional``). ``parallel=False`` reads on one
+    thread: DuckDB's parallel reader cannot pad short lines of a file with quoted line breaks.
     """
     options = mapping.csv
     header = _csv_header(path, options)
@@ -209,13 +210,19 @@ def scan_csv(con, path: Path, mapping: Mapping, table: TableMapping) -> ScanResu
             '{path_text}', header = {str(bool(header_lines)).lower()}, auto_detect = false,
             columns = {{{columns}}}, delim = {quoted['delimiter']}, quote = {quoted['quote']},
             escape = {quoted['escape']}, null_padding = true, nullstr = '{_NEVER_NULL}',
-            store_rejects = true, rejects_table = 'dromos_rejects',
+            parallel = {str(parallel).lower()}, store_rejects = true, rejects_table = 'dromos_rejects',
             rejects_scan = 'dromos_reject_scans', max_line_size = 10000000
         )
         """
     )
     _create_src_view(con, "raw_numbered", table, set(), (header[-1], extra, options["delimiter"]))
     return ScanResult(kind="csv", table=table.table, path=path, header_lines=header_lines, positional=True)
+
+
+def needs_serial_read(error: BaseException) -> bool:
+    """Whether a read failed only because the file has quoted line breaks (see scan_csv)."""
+    cause = error.__cause__ or error
+    return "quoted new lines" in str(cause) and "parallel" in str(cause)
 
 
 def _reject_reason(error_types: str) -> str:

@@ -337,3 +337,16 @@ def test_record_numbers_count_empty_lines(registry, tmp_path):
     result = load_file(registry, path)
     assert (result.rows_read, result.rows_loaded, result.rows_quarantined) == (3, 2, 1)
     assert [(r[0], r[3]) for r in _quarantine(registry)] == [(4, "unparseable date")]
+
+
+def test_quoted_line_breaks_in_a_field_still_load(registry, persons_file, tmp_path):
+    """A statement with a line break inside quotes is one field (RFC 4180, section 2.6)."""
+    load_file(registry, persons_file)
+    path = write_csv(tmp_path / "ecgs.csv", ECG_HEADER, [
+        ecg_row("T1", "P1", statements="Sinus rhythm\nwith first degree AV block"),
+        ecg_row("T2", "P1"),
+    ])
+    result = load_file(registry, path)
+    assert (result.rows_read, result.rows_loaded) == (2, 2)
+    statements = registry.execute("SELECT statements FROM ecg WHERE ecg_key = 'T1'").fetchone()[0]
+    assert statements == ["Sinus rhythm\nwith first degree AV block"]
