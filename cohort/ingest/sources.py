@@ -1,7 +1,8 @@
-"""Expose a source file to the staging SQL as the view ``src`` (record + canonical text columns).
+"""Expose a source file to the staging SQL as the view ``src`` (canonical text columns).
 
-CSV is read by DuckDB in one pass with rejected lines captured (wrong field count, invalid
-UTF-8); Parquet is read as is; FHIR NDJSON is flattened in ``cohort.ingest.fhir``. Every
+CSV is read by DuckDB in one pass on all threads, with rejected lines captured (invalid UTF-8,
+two or more fields too many) and a wrong field count flagged per row (``line_problem``);
+Parquet is read as is (its row number is the record); FHIR NDJSON is flattened in ``cohort.ingest.fhir``. Every
 source yields the same view, so one set of staging statements validates them all.
 """
 
@@ -38,6 +39,7 @@ class ScanResult:
     positional: bool = False
     """True when ``src`` has no row_k: a staged row's record is its position (CSV)."""
     reject_lines: list[int] = field(default_factory=list)
+    """File line numbers of the rejected lines (see finish)."""
 
     def finish(self, con) -> None:
         """After staging read the file: collect rejected lines, build table ``skip_offset``."""
