@@ -237,7 +237,7 @@ def load_fhir_file(con, path: Path, *, mapping: Mapping, key: bytes | None, rule
         arrow = pa.table(
             {name: pa.array(values, type=pa.int64() if name == "row_k" else pa.string()) for name, values in arrays.items()}
         )
-        result = sources.scan_arrow(con, arrow, table_mapping, sha256, "fhir")
+        result = sources.scan_arrow(con, arrow, table_mapping, "fhir")
         result.preset_rejects = rejected
         return result
 

@@ -27,7 +27,6 @@ class ScanResult:
 
     kind: str  # csv | parquet | fhir
     table: str
-    sha256: str = ""
     path: Path | None = None
     header_lines: int = 0
     empty_lines: list[int] | None = None
@@ -248,7 +247,7 @@ def scan_parquet(con, path: Path, table: TableMapping) -> ScanResult:
     return ScanResult(kind="parquet", table=table.table)
 
 
-def scan_arrow(con, arrow_table, table: TableMapping, sha256: str, kind: str) -> ScanResult:
+def scan_arrow(con, arrow_table, table: TableMapping, kind: str) -> ScanResult:
     """Expose an Arrow table of canonical text columns (with ``row_k``) as ``src``."""
     con.register("dromos_arrow_source", arrow_table)
     con.execute("CREATE OR REPLACE TEMP TABLE raw_arrow AS SELECT * FROM dromos_arrow_source")
@@ -260,4 +259,4 @@ def scan_arrow(con, arrow_table, table: TableMapping, sha256: str, kind: str) ->
         options=table.options,
     )
     _create_src_view(con, "raw_arrow", identity, set())
-    return ScanResult(kind=kind, table=table.table, sha256=sha256)
+    return ScanResult(kind=kind, table=table.table)
