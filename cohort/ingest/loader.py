@@ -17,6 +17,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import duckdb
+import numpy as np
+import pyarrow as pa
 
 from cohort import __version__
 from cohort.errors import InputFileError, MappingError, RegistryError
@@ -125,6 +127,7 @@ def _stage_checks(con, scanned: sources.ScanResult) -> None:
     _check_positions(con, scanned.positional)
     scanned.finish(con)
     con.execute(read_sql(_STAGE_SQL[scanned.table][1]))
+    _write_repeated_keys(con)
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
     # Records are numbered by file line: empty lines (skipped by the reader) are looked for only
     # when some record will be reported, which spares a pass over a clean file.
@@ -133,6 +136,22 @@ def _stage_checks(con, scanned: sources.ScanResult) -> None:
         if scanned.empty_lines:
             scanned.write_skip_offset(con)
             con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
+
+
+def _write_repeated_keys(con) -> None:
+    """Temp table ``stage_repeats``: key hashes held by more than one record without problems.
+
+    Sorting the 64-bit hashes (numpy) finds them several times faster than a hash aggregate
+    over keys that are nearly all distinct; classify.sql then compares the keys themselves.
+    """
+    found = con.execute("SELECT key_hash FROM stage_checked WHERE len(problems) = 0").fetchnumpy()
+    hashes = np.sort(np.asarray(found["key_hash"], dtype=np.uint64))
+    repeated = np.unique(hashes[1:][hashes[1:] == hashes[:-1]])
+    con.execute("CREATE OR REPLACE TEMP TABLE stage_repeats (key_hash UBIGINT)")
+    if len(repeated):
+        con.register("_repeated_hashes", pa.table({"key_hash": pa.array(repeated, pa.uint64())}))
+        con.execute("INSERT INTO stage_repeats SELECT key_hash FROM _repeated_hashes")
+        con.unregister("_repeated_hashes")
 
 
 def _any_reported(con) -> bool:
@@ -312,8 +331,8 @@ def _load_scanned(
 
 
 _TEMPORARIES = (
-    "stage_outcome", "stage_checked", "stage_typed", "raw_arrow", "skip_offset", "dromos_rejects",
-    "dromos_reject_scans", "src", "raw_numbered", "raw_source", "target_rows",
+    "stage_outcome", "stage_checked", "stage_typed", "stage_repeats", "raw_arrow", "skip_offset",
+    "dromos_rejects", "dromos_reject_scans", "src", "raw_numbered", "raw_source", "target_rows",
 )
 
 

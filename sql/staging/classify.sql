@@ -2,7 +2,8 @@
 -- Grain: one row per staged record that is NOT simply loaded (problems, a key already in the
 -- registry, a key repeated in the file) or that was repaired; every other record loads.
 -- Input: stage_checked (row_k, dedup_key (a row of the key columns), key_hash, problems, repairs,
--- content_hash, ...),
+-- content_hash, ...), stage_repeats (key_hash: the hashes more than one record without problems
+-- has; found by the loader with a sort, see loader._write_repeated_keys),
 -- stage_refs (row_k, problems, registry_hash, registry_source: registry references of the
 -- few records that have them) and skip_offset (k_start, lines_before): the source
 -- line of the k-th parsed row is k + lines_before of the last k_start <= k (header, empty and
@@ -10,14 +11,7 @@
 -- key is in the registry, or in an earlier clean record of the file, is a duplicate when its
 -- content is identical and is quarantined as a conflict otherwise (nothing is overwritten).
 CREATE OR REPLACE TEMP TABLE stage_outcome AS
-WITH clean_repeats AS (
-    SELECT key_hash
-    FROM stage_checked
-    WHERE len(problems) = 0
-    GROUP BY 1
-    HAVING count(*) > 1
-),
-candidates AS (
+WITH candidates AS (
     SELECT c.row_k, c.dedup_key, c.repairs, c.content_hash,
            list_concat(c.problems, coalesce(r.problems, [])) AS problems,
            r.registry_hash, r.registry_source,
@@ -27,7 +21,7 @@ candidates AS (
     WHERE len(c.problems) > 0
        OR r.row_k IS NOT NULL
        OR len(c.repairs) > 0
-       OR (len(c.problems) = 0 AND c.key_hash IN (SELECT key_hash FROM clean_repeats))
+       OR (len(c.problems) = 0 AND c.key_hash IN (SELECT key_hash FROM stage_repeats))
 ),
 ranked AS (
     SELECT
