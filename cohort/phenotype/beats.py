@@ -63,7 +63,8 @@ import math
 import tomllib
 from bisect import bisect_left, bisect_right, insort
 from dataclasses import dataclass, fields
-from functools import cache
+from functools import cache, cached_property
+from operator import sub
 from pathlib import Path
 from typing import Any, NamedTuple
 
@@ -301,9 +302,9 @@ def _upper_quartile_sorted(s: list[float]) -> float:
     return s[lo] + (s[hi] - s[lo]) * (pos - lo)
 
 
-def _local(values: list[float], keep: list[bool], w: int, stat) -> list[float]:
+def _local(values: list[float], keep: list[bool] | None, w: int, stat) -> list[float]:
     """``stat`` (of a sorted list) of the kept values in a window of 2w+1 positions around each
-    position.
+    position (``keep=None``: every value is kept).
 
     At the edges the window slides inwards (keeps its size), so the first and last beats are
     judged against as many neighbours as the others; empty windows fall back to all kept values.
@@ -311,6 +312,11 @@ def _local(values: list[float], keep: list[bool], w: int, stat) -> list[float]:
     """
     n = len(values)
     size = min(n, 2 * w + 1)
+    if keep is None:
+        if not values:
+            return []
+        stats = _sliding_all(values, size, stat)
+        return stats * n if n == size else stats[:1] * w + stats + stats[-1:] * w
     window = sorted(v for v, k in zip(values[:size], keep[:size], strict=True) if k)
     stats = [stat(window) if window else None]
     for lo in range(1, n - size + 1):
@@ -327,6 +333,32 @@ def _local(values: list[float], keep: list[bool], w: int, stat) -> list[float]:
         return stats * n
     # n > 2w+1: the first w positions share the first window, the last w the last one
     return stats[:1] * w + stats + stats[-1:] * w
+
+
+# From this many windows on, numpy sorts all windows of a running median at once (same values).
+_NUMPY_WINDOWS = 24
+
+
+def _sliding_all(values: list[float], size: int, stat) -> list[float]:
+    """``stat`` of every window of ``size`` consecutive values (all kept, so none is empty)."""
+    if stat is _median_sorted and len(values) - size + 1 >= _NUMPY_WINDOWS:
+        return _sliding_median_numpy(values, size)
+    window = sorted(values[:size])
+    stats = [stat(window)]
+    for lo in range(1, len(values) - size + 1):
+        del window[bisect_left(window, values[lo - 1])]
+        insort(window, values[lo + size - 1])
+        stats.append(stat(window))
+    return stats
+
+
+def _sliding_median_numpy(values: list[float], size: int) -> list[float]:
+    """Running median of long strips: every window sorted by numpy, then ``_median_sorted``'s
+    arithmetic on the middle columns (identical floats: the same values are picked and added)."""
+    windows = np.sort(np.lib.stride_tricks.sliding_window_view(np.asarray(values), size), axis=1)
+    mid = size // 2
+    middle = windows[:, mid] if size % 2 else (windows[:, mid - 1] + windows[:, mid]) / 2
+    return middle.tolist()
 
 
 def _densest(xs: list[float], width: float) -> tuple[int, float]:
@@ -381,6 +413,8 @@ def _prepare(values: Any, name: str) -> tuple[list[float], int]:
 
 def _merge_close(times: list[float], min_gap: float) -> tuple[list[float], int]:
     """Keep the first of onsets closer than ``min_gap`` (one wave detected twice)."""
+    if len(times) < 2 or min(map(sub, times[1:], times)) >= min_gap:
+        return list(times), 0
     out: list[float] = []
     for t in times:
         if out and t - out[-1] < min_gap:
@@ -421,7 +455,7 @@ def _expected_pp(iv: list[float], r: BeatRules) -> list[float]:
     if long_cycle is not None:
         e1 = [long_cycle] * len(iv)
     else:
-        e1 = local_median = _local(iv, [True] * len(iv), w, _median_sorted)
+        e1 = local_median = _local(iv, None, w, _median_sorted)
         explained = _explained(iv, e1, r)
         if explained < len(iv):  # only then can another candidate do better
             cap = 1.5 * _upper_quartile_sorted(sorted(iv))
@@ -504,36 +538,50 @@ def _analyse_atrium(p: list[float], r: BeatRules, q: list[float] | None = None,
     iv = [p[i + 1] - p[i] for i in range(n - 1)]
     exp_iv = _expected_pp(iv, r)
     at = _Atrium([p[0]], [p[0] in forced_set], [False], [exp_iv[0]], [], None, 0, 0)
-    ctx = _QrsContext(q or [], _pr_hint(p, q or [], r), r)
+    ctx = _QrsContext(p, q or [], r)
+    # the columns of ``at`` are appended to in place (hot loop: no helper call per P)
+    times, inferred, premature, expected = at.t, at.inferred, at.premature, at.expected
+    early = r.premature_fraction
     skip = False
     for i in range(1, n):
         if skip:
             skip = False
             continue
         t, e = p[i], exp_iv[i - 1]
-        nxt = p[i + 1] if i + 1 < n else None
-        gap = t - at.t[-1]
-        e_next = exp_iv[i] if i < n - 1 else e
-        if t in forced_set:
+        if forced_set and t in forced_set:
             _append(at, t, e, premature=False, inferred=True)
             continue
+        gap = t - times[-1]
         # _is_short's first test inline: most P waves are not early
-        nxt_gap = None if nxt is None else nxt - t
-        if gap < r.premature_fraction * e and _is_short(gap, e, nxt_gap, e_next, r):
-            if _extra_after_premature(at, t, p[i + 1: i + 4], e, ctx):
-                _append(at, t, e, premature=True)
-                at.artefacts.append(p[i + 1])
-                skip = True
+        if gap < early * e:
+            nxt = p[i + 1] if i + 1 < n else None
+            nxt_gap = None if nxt is None else nxt - t
+            e_next = exp_iv[i] if i < n - 1 else e
+            if _is_short(gap, e, nxt_gap, e_next, r):
+                skip = _early_p(at, p, i, e, ctx)
                 continue
-            if _resolve_extra(at, t, nxt, e, ctx):
-                continue
-            _append(at, t, e, premature=True)
-            continue
-        if not at.premature[-1] and gap / e >= 1.5:  # else round(gap / e) < 2: nothing missed
+        if not premature[-1] and gap / e >= 1.5:  # else round(gap / e) < 2: nothing missed
             _infer_missed(at, gap, e, r)
-        _append(at, t, e, premature=False)
+        times.append(t)
+        inferred.append(False)
+        premature.append(False)
+        expected.append(e)
     _summarise_atrium(at, r)
     return at
+
+
+def _early_p(at: _Atrium, p: list[float], i: int, e: float, ctx: _QrsContext) -> bool:
+    """Place the early P ``p[i]``: premature (with the next detection extra), extra itself, or
+    premature; True when the next detection was taken as extra (the walk skips it)."""
+    t = p[i]
+    if _extra_after_premature(at, t, p[i + 1: i + 4], e, ctx):
+        _append(at, t, e, premature=True)
+        at.artefacts.append(p[i + 1])
+        return True
+    if _resolve_extra(at, t, p[i + 1] if i + 1 < len(p) else None, e, ctx):
+        return False
+    _append(at, t, e, premature=True)
+    return False
 
 
 def _append(at: _Atrium, t: float, e: float, *, premature: bool, inferred: bool = False) -> None:
@@ -543,13 +591,16 @@ def _append(at: _Atrium, t: float, e: float, *, premature: bool, inferred: bool 
     at.expected.append(e)
 
 
-@dataclass
 class _QrsContext:
-    """What the atrial walk may use of the QRS complexes: their onsets and a PR hint."""
+    """What the atrial walk may use of the QRS complexes: their onsets and a PR hint (computed
+    only when an early P needs it)."""
 
-    q: list[float]
-    pr_hint: float | None
-    r: BeatRules
+    def __init__(self, p: list[float], q: list[float], r: BeatRules) -> None:
+        self.p, self.q, self.r = p, q, r
+
+    @cached_property
+    def pr_hint(self) -> float | None:
+        return _pr_hint(self.p, self.q, self.r)
 
     def typical(self, t: float) -> bool:
         """A QRS follows P ``t`` at about the strip's typical PR (it looks conducted)."""
@@ -768,15 +819,16 @@ def _greedy(pt: list[float], q: list[float], r: BeatRules, skip: set[int]) -> li
     The latest P at least pr_min before the QRS is the only candidate worth checking: if it is
     beyond pr_max (or already used), every earlier P is too.
     """
-    out, last = [], -1
+    out: list[int] = []
+    add, last = out.append, -1
     lo, hi = r.pr_min_ms, r.pr_max_ms
     for j, t in enumerate(q):
         k = bisect_right(pt, t - lo) - 1
-        if k > last and t - pt[k] <= hi and j not in skip:
-            out.append(k)
+        if k > last and t - pt[k] <= hi and (not skip or j not in skip):
+            add(k)
             last = k
         else:
-            out.append(-1)
+            add(-1)
     return out
 
 
@@ -915,7 +967,7 @@ def _local_rr(q: list[float], r: BeatRules) -> list[float]:
     if len(q) < 2:
         return [math.nan] * len(q)
     rr = [q[i + 1] - q[i] for i in range(len(q) - 1)]
-    loc = _local(rr, [True] * len(rr), r.ventricular_window, _median_sorted)
+    loc = _local(rr, None, r.ventricular_window, _median_sorted)
     return [math.nan, *loc]
 
 
@@ -1050,26 +1102,16 @@ def _collect_drops(segments) -> tuple[list[_Drop], list[tuple[int, int, bool]]]:
     return drops, groups
 
 
-def _pr(at: _Atrium, m: _Match, q: list[float], i: int, *, inferred_ok: bool = False) -> float | None:
-    """PR of analysed P ``i`` if it conducted; an inferred P's PR only when ``inferred_ok``.
-
-    An inferred P sits where the cadence puts it (error about the sinus irregularity), good
-    enough to judge the PR around a drop but kept out of the PR series and the fixed-PR test.
-    """
-    j = m.q_of_p[i]
-    if j < 0 or (at.inferred[i] and not inferred_ok):
-        return None
-    return q[j] - at.t[i]
-
-
-def _judge_drop(d: _Drop, at: _Atrium, m: _Match, q: list[float], r: BeatRules) -> str:
+def _judge_drop(d: _Drop, at: _Atrium, m: _Match, q: list[float], r: BeatRules,
+                pr_of_p: list[float | None]) -> str:
     """W/F (strong Mobitz I/II evidence), w/f (weak), or u (unclear) for a single drop.
 
     The groups on both sides count: Mobitz I groups repeat, so the PR lengthening after the
-    reset is as good evidence as the lengthening before the drop.
+    reset is as good evidence as the lengthening before the drop. ``pr_of_p`` is the PR of
+    every analysed P (inferred ones included, None if not conducted).
     """
-    before = [_pr(at, m, q, i, inferred_ok=True) for i in d.before]
-    after = [_pr(at, m, q, i, inferred_ok=True) for i in d.after_run]
+    before = [pr_of_p[i] for i in d.before]
+    after = [pr_of_p[i] for i in d.after_run]
     if not d.after_run or not d.before:
         # a drop at the strip's edge: only a textbook Wenckebach run (PR lengthening by
         # shrinking steps) on its one side shows the type
@@ -1127,16 +1169,19 @@ def _progressive(prs: list[float], r: BeatRules) -> bool:
 def _features(at: _Atrium, m: _Match, q: list[float], r: BeatRules) -> _Features:
     status = _status(at, m)
     drops, groups = _collect_drops(_runs(status))
+    # PR of every analysed P that conducted. Inferred P waves sit where the cadence puts them
+    # (error about the sinus irregularity): good enough to judge the PR around a drop, but
+    # kept out of the PR series and the fixed-PR test.
+    pr_of_p = [q[j] - t if j >= 0 else None for j, t in zip(m.q_of_p, at.t, strict=True)]
     for d in drops:
         if len(d.run) == 1:
-            d.kind = _judge_drop(d, at, m, q, r)
+            d.kind = _judge_drop(d, at, m, q, r, pr_of_p)
     blocked_prem = [i for i in range(len(at.t)) if at.premature[i] and m.q_of_p[i] < 0
                     and not m.preempted[i] and not m.unassessable[i]]
     pts, prs = [], []
-    for i in range(len(at.t)):
-        pr = _pr(at, m, q, i)
-        if pr is not None and not at.premature[i]:
-            pts.append(at.t[i])
+    for t, pr, early, inferred in zip(at.t, pr_of_p, at.premature, at.inferred, strict=True):
+        if pr is not None and not early and not inferred:
+            pts.append(t)
             prs.append(pr)
     pr_med = _median(prs) if prs else None
     fixed, drift = _fixed_relation(pts, prs, pr_med, at, m, r)

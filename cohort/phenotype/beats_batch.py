@@ -6,11 +6,10 @@ time; ``sql/phenotype/beat_events.sql``), splits them into per-strip QRS and P r
 and writes one row per ``ecg_key`` into ``beat_pattern``
 (``sql/phenotype/beat_pattern_table.sql``).
 
-Speed: many registry strips are clean 1:1 conduction. Those are recognised and classified in
-one vectorized pass over the concatenated arrays (``_fast_one_to_one``), under conditions
-strict enough that the per-strip classifier provably reaches the same result (every QRS
-between its P and the next P, all P-P intervals within +-10 % of the strip median, PR spread
-below twice the fixed-PR tolerance, no PR drift); every other strip goes through
+Speed: many registry strips are clean 1:1 conduction, some with one missed P detection. Those
+are recognised and classified in vectorized passes over the concatenated arrays
+(``cohort.phenotype.beats_vector``), under conditions strict enough that the per-strip
+classifier provably reaches the same result; every other strip goes through
 ``cohort.phenotype.beats.classify_sorted``.
 """
 
@@ -20,44 +19,25 @@ import dataclasses
 import hashlib
 import multiprocessing
 from collections.abc import Callable
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 
-from cohort.phenotype.beats import BeatRules, classify_sorted, one_to_one_evidence, resolve_rules
+from cohort.phenotype.beats import BeatRules, classify_sorted, resolve_rules
+from cohort.phenotype.beats_vector import COLUMNS, StripRuns, vectorized_rows
 from cohort.sqlfiles import read_sql
 
 ProgressFn = Callable[[int, int], None]
 
-# Margins that keep the vectorized path strictly inside the per-strip classifier's thresholds.
-# P-P within +-10 % of the median keeps every interval within [0.82, 1.22] of any local
-# expected P-P, inside the premature (0.80) and on-time (1.25) limits; the drift margin absorbs
-# floating-point differences between the two least-squares computations.
-_PP_BAND = 0.10
-_DRIFT_MARGIN = 0.9
-# PR spread below twice the fixed-PR tolerance puts every PR within the tolerance of the
-# cluster centre, so no beat is set aside as ectopic; 2 % margin for rounding of the centre.
-_SPREAD_MARGIN = 0.98
 # Below this many per-strip cases, starting worker processes costs more than it saves.
 _MIN_PARALLEL = 2_000
 
 
-@dataclass
-class _Strips:
-    """Per-strip views into the concatenated, ordered event arrays."""
-
-    keys: list[str]
-    t: np.ndarray
-    q_start: np.ndarray
-    q_end: np.ndarray
-    p_start: np.ndarray
-    p_end: np.ndarray
-
-
-_COLUMNS = ("pattern", "ratio", "atrial_rate", "ventricular_rate", "escape_rate", "pr_median_ms",
-            "n_p", "n_qrs", "n_not_conducted", "evidence")
+_Strips = StripRuns
+_COLUMNS = COLUMNS
+# the vectorized 1:1 paths (plain and one missed P), under the name the tests and benchmark use
+_fast_one_to_one = vectorized_rows
 
 
 def classify_registry(con, *, rules: BeatRules | str | None = None,
@@ -111,10 +91,11 @@ def _run_row(con, r: BeatRules, n_strips: int) -> dict:
 
 
 def _classifier_fingerprint() -> str:
-    """sha256 of the classifier's source (this module and beats.py): code changes invalidate."""
+    """sha256 of the classifier's source (this module, beats.py, beats_vector.py): code changes
+    invalidate."""
     here = Path(__file__).resolve().parent
     digest = hashlib.sha256()
-    for name in ("beats.py", "beats_batch.py"):
+    for name in ("beats.py", "beats_batch.py", "beats_vector.py"):
         digest.update((here / name).read_bytes())
     return digest.hexdigest()
 
@@ -251,139 +232,6 @@ def _row(item: tuple[list, list, int], r: BeatRules) -> tuple:
     return (res.pattern, res.ratio, res.atrial_rate_bpm, res.ventricular_rate_bpm,
             res.escape_rate_bpm, res.pr_median_ms, res.n_p, res.n_qrs, res.n_not_conducted,
             list(res.evidence))
-
-
-# --------------------------------------------------------------------------------------------
-# Vectorized path for clean 1:1 strips
-# --------------------------------------------------------------------------------------------
-def _group_median(values: np.ndarray, group: np.ndarray, sizes: np.ndarray) -> np.ndarray:
-    """Median of ``values`` per group (groups contiguous, sizes >= 1), as numpy.median."""
-    order = np.lexsort((values, group))
-    s = values[order]
-    start = np.concatenate(([0], np.cumsum(sizes)[:-1]))
-    lo = start + (sizes - 1) // 2
-    hi = start + sizes // 2
-    return np.where(sizes % 2 == 1, s[lo], (s[lo] + s[hi]) / 2)
-
-
-def _fast_one_to_one(strips: _Strips, r: BeatRules) -> dict:
-    """Vectorized classification of clean 1:1 strips; returns their rows and strip indices.
-
-    A strip may open with a QRS whose P precedes the strip and close with a P whose QRS follows
-    it (both unassessable in the per-strip classifier); between them every P must conduct the
-    QRS before the next P.
-    """
-    n_q = strips.q_end - strips.q_start
-    n_p = strips.p_end - strips.p_start
-    has = np.flatnonzero((n_q >= 1) & (n_p >= 1))
-    t = strips.t
-    lead = np.zeros(len(n_q), dtype=np.int64)
-    trail = np.zeros(len(n_q), dtype=np.int64)
-    lead[has] = t[strips.q_start[has]] < t[strips.p_start[has]]
-    trail[has] = t[strips.p_end[has] - 1] > t[strips.q_end[has] - 1]
-    core = n_p - trail
-    cand = np.flatnonzero((n_q - lead == core) & (core >= max(r.min_p, r.min_qrs, 3)))
-    if len(cand) == 0:
-        return _empty_fast()
-    size = core[cand]
-    rep = np.repeat(np.arange(len(cand)), size)
-    offset = np.arange(int(size.sum())) - np.repeat(np.cumsum(size) - size, size)
-    p = t[strips.p_start[cand][rep] + offset]
-    q = t[(strips.q_start[cand] + lead[cand])[rep] + offset]
-    pr = q - p
-    start = np.cumsum(size) - size
-    last = start + size - 1
-    ok = _all_per_group(np.isfinite(p) & np.isfinite(q) & (pr >= r.pr_min_ms) & (pr <= r.pr_max_ms),
-                        rep, len(cand))
-    # the optional leading QRS and trailing P join the interval checks
-    p_all = _with_edges(p, t[strips.p_end[cand] - 1], trail[cand], start, size, after=True)
-    q_all = _with_edges(q, t[strips.q_start[cand]], lead[cand], start, size, after=False)
-    pp, pp_group = _inner_diffs(*p_all)
-    rr, rr_group = _inner_diffs(*q_all)
-    inner = np.ones(len(p), dtype=bool)
-    inner[last] = False
-    nxt = np.flatnonzero(inner)
-    ok &= _all_per_group(q[nxt] < p[nxt + 1], rep[nxt], len(cand))
-    ok &= _all_per_group(np.isfinite(pp) & (pp >= r.p_duplicate_ms), pp_group, len(cand))
-    ok &= _all_per_group(np.isfinite(rr) & (rr >= r.qrs_duplicate_ms), rr_group, len(cand))
-    pp_med = _group_median(pp, pp_group, size - 1 + trail[cand])
-    ratio = pp / pp_med[pp_group]
-    ok &= _all_per_group((ratio >= 1 - _PP_BAND) & (ratio <= 1 + _PP_BAND), pp_group, len(cand))
-    pr_lo = np.minimum.reduceat(pr, start)
-    pr_hi = np.maximum.reduceat(pr, start)
-    ok &= pr_hi - pr_lo <= _SPREAD_MARGIN * 2 * r.pr_fixed_tolerance_ms
-    atrial = 60_000.0 / pp_med
-    ok &= atrial <= r.atrial_rate_max_bpm
-    ok &= _group_drift(p, pr, rep, size) <= _DRIFT_MARGIN * r.pr_drift_max_ms
-    pr_med = _group_median(pr, rep, size)
-    n_qrs = n_q[cand]
-    ventricular = 60_000.0 * (n_qrs - 1) / (q[last] - t[strips.q_start[cand]])
-    sel = np.flatnonzero(ok)
-    return _fast_rows(cand[sel], pr_med[sel], pr_lo[sel], pr_hi[sel], size[sel], atrial[sel],
-                      ventricular[sel], n_p[cand][sel], n_qrs[sel], trail[cand][sel], r)
-
-
-def _with_edges(x: np.ndarray, edge: np.ndarray, has_edge: np.ndarray, start: np.ndarray,
-                size: np.ndarray, *, after: bool) -> tuple[np.ndarray, np.ndarray]:
-    """Insert each group's optional edge value before (or after) its run; values and groups."""
-    group = np.repeat(np.arange(len(size)), size)
-    extra = np.flatnonzero(has_edge)
-    pos = (start + size)[extra] if after else start[extra]
-    values = np.insert(x, pos, edge[extra])
-    groups = np.insert(group, pos, extra)
-    return values, groups
-
-
-def _inner_diffs(values: np.ndarray, group: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Successive differences within groups (groups contiguous) and their group numbers."""
-    same = group[1:] == group[:-1]
-    return (values[1:] - values[:-1])[same], group[1:][same]
-
-
-def _all_per_group(flags: np.ndarray, group: np.ndarray, n: int) -> np.ndarray:
-    bad = np.bincount(group[~flags], minlength=n)
-    return bad == 0
-
-
-def _group_drift(t: np.ndarray, y: np.ndarray, group: np.ndarray, size: np.ndarray) -> np.ndarray:
-    """Least-squares change of y over the span of t, per group (0 for fewer than 3 points)."""
-    n = size.astype(float)
-    mt = np.bincount(group, t) / n
-    my = np.bincount(group, y) / n
-    dt = t - mt[group]
-    sxx = np.bincount(group, dt * dt)
-    sxy = np.bincount(group, dt * (y - my[group]))
-    start = np.cumsum(size) - size
-    span = t[start + size - 1] - t[start]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        drift = np.abs(np.where(sxx > 0, sxy / sxx, 0.0) * span)
-    return np.where(size >= 3, drift, 0.0)
-
-
-def _empty_fast() -> dict:
-    return {"index": np.zeros(0, dtype=np.int64), **{c: [] for c in _COLUMNS}}
-
-
-def _fast_rows(index, pr_med, pr_lo, pr_hi, size, atrial, ventricular, n_p, n_qrs, trail,
-               r: BeatRules) -> dict:
-    out = {"index": index, **{c: [] for c in _COLUMNS}}
-    for med, lo, hi, n, a, v, np_, nq, tr in zip(
-            pr_med.tolist(), pr_lo.tolist(), pr_hi.tolist(), size.tolist(), atrial.tolist(),
-            ventricular.tolist(), n_p.tolist(), n_qrs.tolist(), trail.tolist(), strict=True):
-        pattern, reasons, sentence = one_to_one_evidence(med, lo, hi, n, r.pr_normal_max_ms)
-        if tr:
-            reasons.append("unassessable_p=1")  # the closing P, as the per-strip classifier notes
-        out["pattern"].append(pattern)
-        out["ratio"].append("1:1")
-        out["atrial_rate"].append(a)
-        out["ventricular_rate"].append(v)
-        out["escape_rate"].append(None)
-        out["pr_median_ms"].append(med)
-        out["n_p"].append(np_)
-        out["n_qrs"].append(nq)
-        out["n_not_conducted"].append(0)
-        out["evidence"].append([*reasons, sentence])
-    return out
 
 
 # --------------------------------------------------------------------------------------------
