@@ -18,6 +18,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import multiprocessing
+import os
 from collections.abc import Callable
 from pathlib import Path
 
@@ -32,6 +33,10 @@ ProgressFn = Callable[[int, int], None]
 
 # Below this many per-strip cases, starting worker processes costs more than it saves.
 _MIN_PARALLEL = 2_000
+# More workers than this gain little: the vectorized paths, reading and writing stay serial.
+_MAX_AUTO_WORKERS = 8
+# The strips and rules a forked worker classifies, inherited from the parent (not pickled).
+_FORKED_WORK: tuple[list, BeatRules] | None = None
 
 
 _Strips = StripRuns
@@ -41,7 +46,7 @@ _fast_one_to_one = vectorized_rows
 
 
 def classify_registry(con, *, rules: BeatRules | str | None = None,
-                      progress: ProgressFn | None = None, workers: int = 1) -> int:
+                      progress: ProgressFn | None = None, workers: int | None = None) -> int:
     """Classify every strip of ``wave_event`` and (re)create ``beat_pattern``; rows written.
 
     Parameters
@@ -53,8 +58,9 @@ def classify_registry(con, *, rules: BeatRules | str | None = None,
     progress
         Optional callable ``progress(done, total)`` called as strips are classified.
     workers
-        Processes for the strips that need the per-strip classifier (default 1: in-process).
-        Results do not depend on it.
+        Processes for the strips that need the per-strip classifier; None: the usable cores
+        (at most 8) where processes can be forked, else 1 (in-process). Results do not depend
+        on it.
     """
     r = resolve_rules(rules)
     strips = _read_strips(con)
@@ -64,7 +70,7 @@ def classify_registry(con, *, rules: BeatRules | str | None = None,
 
 
 def refresh_registry(con, *, rules: BeatRules | str | None = None,
-                     progress: ProgressFn | None = None, workers: int = 1) -> tuple[int, bool]:
+                     progress: ProgressFn | None = None, workers: int | None = None) -> tuple[int, bool]:
     """``classify_registry`` unless ``beat_pattern`` is up to date; (rows, reused).
 
     Up to date means computed (``beat_run``) from the same wave events (fingerprint), the same
@@ -151,8 +157,9 @@ def _arrow(relation) -> pa.Table:
 
 
 def classify_strips(strips: _Strips, r: BeatRules, *, progress: ProgressFn | None = None,
-                    workers: int = 1) -> dict:
-    """Column lists of beat_pattern (without keys) for all strips."""
+                    workers: int | None = None) -> dict:
+    """Column lists of beat_pattern (without keys) for all strips (workers: see
+    :func:`classify_registry`)."""
     n = len(strips.keys)
     cols: dict[str, list] = {c: [None] * n for c in _COLUMNS}
     fast = _fast_one_to_one(strips, r)
@@ -165,6 +172,7 @@ def classify_strips(strips: _Strips, r: BeatRules, *, progress: ProgressFn | Non
     slow = np.flatnonzero(~done)
     items = _slow_items(strips, slow)
     n_fast = len(fast["index"])
+    workers = default_workers() if workers is None else workers
     if workers > 1 and len(items) >= _MIN_PARALLEL:
         rows = _rows_in_workers(items, r, workers, progress, n_fast, n)
     else:
@@ -201,19 +209,53 @@ def _slow_items(strips: _Strips, slow: np.ndarray) -> list[tuple[list, list, int
         ps.tolist(), pe.tolist(), qs.tolist(), qe.tolist(), dropped.tolist(), strict=True)]
 
 
+def default_workers() -> int:
+    """Worker processes used when none are asked for: the usable cores (at most 8) where the
+    platform can fork, else 1. A spawned worker would re-import the caller's main script, which
+    a script without a main guard does not survive, so spawning is only done on request."""
+    if "fork" not in multiprocessing.get_all_start_methods():
+        return 1
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    return max(1, min(_MAX_AUTO_WORKERS, cores or 1))
+
+
 def _rows_in_workers(items: list, r: BeatRules, workers: int, progress: ProgressFn | None,
                      n_fast: int, n: int) -> list[tuple]:
-    """Classify in a pool of spawned processes (no inherited DuckDB state), in order."""
+    """Classify in a pool of worker processes, in order.
+
+    Where the platform can fork, workers inherit the strips (nothing is pickled but the rows
+    coming back) and run only the pure-Python classifier: they never touch DuckDB, and a forked
+    worker leaves through ``os._exit``, so the parent's database is not closed or written by
+    it. Elsewhere the strips are sent to spawned processes.
+    """
     size = max(1, -(-len(items) // (workers * 8)))
-    chunks = [items[i:i + size] for i in range(0, len(items), size)]
+    bounds = [(i, min(i + size, len(items))) for i in range(0, len(items), size)]
     rows: list[tuple] = []
-    ctx = multiprocessing.get_context("spawn")
-    with ctx.Pool(workers) as pool:
-        for chunk_rows in pool.imap(_rows_of_chunk, [(chunk, r) for chunk in chunks]):
+    if "fork" in multiprocessing.get_all_start_methods():
+        global _FORKED_WORK
+        _FORKED_WORK = (items, r)
+        try:
+            with multiprocessing.get_context("fork").Pool(workers) as pool:
+                for chunk_rows in pool.imap(_rows_of_range, bounds):
+                    rows += chunk_rows
+                    if progress:
+                        progress(n_fast + len(rows), n)
+        finally:
+            _FORKED_WORK = None
+        return rows
+    with multiprocessing.get_context("spawn").Pool(workers) as pool:
+        for chunk_rows in pool.imap(_rows_of_chunk, [(items[a:b], r) for a, b in bounds]):
             rows += chunk_rows
             if progress:
                 progress(n_fast + len(rows), n)
     return rows
+
+
+def _rows_of_range(bounds: tuple[int, int]) -> list[tuple]:
+    """Rows of items[a:b] of the work a forked worker inherited."""
+    items, r = _FORKED_WORK
+    a, b = bounds
+    return [_row(item, r) for item in items[a:b]]
 
 
 def _rows_of_chunk(args: tuple[list, BeatRules]) -> list[tuple]:

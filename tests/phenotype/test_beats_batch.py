@@ -149,15 +149,36 @@ def test_empty_wave_event_writes_an_empty_table():
     assert con.execute("SELECT count(*) FROM beat_pattern").fetchall() == [(0,)]
 
 
-def test_worker_processes_give_the_same_rows(strips, monkeypatch):
+@pytest.mark.parametrize("start_method", ["fork", "spawn"])
+def test_worker_processes_give_the_same_rows(strips, monkeypatch, start_method):
+    import multiprocessing
+
     import cohort.phenotype.beats_batch as batch
 
+    if start_method not in multiprocessing.get_all_start_methods():
+        pytest.skip(f"no {start_method} start method on this platform")
     con = _registry(strips)
-    classify_registry(con)
+    classify_registry(con, workers=1)
     serial = con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall()
     monkeypatch.setattr(batch, "_MIN_PARALLEL", 1)
+    if start_method == "spawn":  # as on a platform that cannot fork
+        monkeypatch.setattr(multiprocessing, "get_all_start_methods", lambda: ["spawn"])
     classify_registry(con, workers=2)
     assert con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall() == serial
+    # the registry is still usable and writable after the workers are gone
+    con.execute("CREATE TABLE after_workers AS SELECT 1 AS x")
+    assert con.execute("SELECT count(*) FROM after_workers").fetchone()[0] == 1
+
+
+def test_default_workers_are_the_usable_cores_where_forking_is_possible(monkeypatch):
+    import multiprocessing
+
+    import cohort.phenotype.beats_batch as batch
+
+    monkeypatch.setattr(multiprocessing, "get_all_start_methods", lambda: ["spawn"])
+    assert batch.default_workers() == 1
+    monkeypatch.setattr(multiprocessing, "get_all_start_methods", lambda: ["fork", "spawn"])
+    assert 1 <= batch.default_workers() <= 8
 
 
 def test_patterns_are_reused_only_while_waves_rules_and_classifier_are_unchanged(strips, tmp_path):
