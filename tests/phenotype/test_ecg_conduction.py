@@ -38,6 +38,19 @@ def test_confirmed_read_beats_machine_read(reg):
     assert "conflict:no_av_block_statement_pr>200" in row["evidence"]
 
 
+def test_confirmed_read_without_machine_read_is_used_alone(reg):
+    # The machine and confirmed reads are paired by a full join: a tracing with only an
+    # overread keeps it, and nothing is taken from (or flagged about) a machine read.
+    reg.ecg("E1", pr=230, read_kind="confirmed", statements=["Sinus rhythm with 1st degree AV block"])
+    reg.ecg("E2", pr=170)
+    reg.run()
+    row = reg.row("E1")
+    assert row["read_kind"] == "confirmed" and row["pr_ms"] == 230
+    assert row["av_category"] == "first_degree" and row["av_source"] == "statement"
+    assert not any(e.startswith(("override:machine", "fallback:machine")) for e in row["evidence"])
+    assert reg.row("E2")["read_kind"] == "machine"
+
+
 def test_confirmed_read_without_measurements_falls_back_to_machine(reg):
     reg.ecg("E1", pr=250, statements=["Sinus rhythm"])
     reg.ecg("E1", pr=None, qrs=None, axis=None, read_kind="confirmed",

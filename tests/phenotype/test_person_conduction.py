@@ -120,3 +120,32 @@ def test_ecg_state_one_row_per_ecg(timeline):
         "SELECT count(*), count(DISTINCT ecg_key) FROM ecg_state WHERE rule_set_id = 'default-v1'"
     ).fetchall()[0]
     assert n == (7, 7)
+
+
+def test_persons_missing_from_person_table_stay_apart(reg):
+    # ECGs inserted without their person (the loader refuses them, a hand-made registry may
+    # not): the per-person steps group by person number, so such persons must not merge.
+    reg.ecg("M1", person="X1", at="2015-01-01 09:00:00", pr=230)
+    reg.ecg("M2", person="X2", at="2015-02-01 09:00:00", pr=170)
+    reg.ecg("M3", person="X1", at="2015-03-01 09:00:00", pr=170, statements=["Ventricular paced rhythm"])
+    reg.ecg("K1", person="P1", at="2015-04-01 09:00:00", pr=170)
+    reg.run()
+    rows = reg.con.execute(
+        "SELECT person_key, ecg_key, ecg_seq, state, worst_state_rank_so_far, paced_by "
+        "FROM ecg_state WHERE rule_set_id = 'default-v1' ORDER BY person_key, ecg_seq"
+    ).fetchall()
+    assert [r[:3] for r in rows] == [
+        ("P1", "K1", 1), ("X1", "M1", 1), ("X1", "M3", 2), ("X2", "M2", 1),
+    ]
+    assert [r[3] for r in rows] == ["normal", "first_degree", "paced", "normal"]
+    assert rows[2][5] == "ecg" and rows[3][5] is None
+    cats = reg.con.execute(
+        "SELECT person_key, category, n_ecg FROM person_category "
+        "WHERE rule_set_id = 'default-v1' AND axis = 'av' ORDER BY person_key, category"
+    ).fetchall()
+    assert ("X1", "first_degree", 1) in cats and ("X2", "normal_pr", 1) in cats
+    assert not any(c[0] == "X2" and c[1] == "first_degree" for c in cats)
+    persons = reg.con.execute(
+        "SELECT person_key, n_ecg FROM person_conduction WHERE rule_set_id = 'default-v1'"
+    ).fetchall()
+    assert persons == [("P1", 1)]
