@@ -155,7 +155,7 @@ def _exclusion_words(key: str, value: Any) -> str:
         "higher_grade_before_index": f"higher-grade AV block ({value}) on or before the index date",
         "af_at_index": "atrial fibrillation on the index ECG",
         "qrs_at_least_ms": f"QRS >= {value} ms on the index ECG",
-        "min_followup_days": f"fewer than {value} days of possible follow-up",
+        "min_followup_days": f"fewer than {value} day{'' if value == 1 else 's'} of possible follow-up",
     }[key]
 
 
