@@ -29,7 +29,8 @@ import numpy as np
 import pyarrow as pa
 
 from cohort.phenotype.beats import load_rules
-from cohort.phenotype.beats_batch import _fast_one_to_one, _read_strips, classify_registry
+from cohort.phenotype.beats_batch import _read_strips, classify_registry
+from cohort.phenotype.beats_vector import vectorized_rows
 from cohort.registry import ensure_schema
 from synthetic_registry.strips import PATTERNS, simulate_strip
 
@@ -91,7 +92,7 @@ def main(argv: list[str] | None = None) -> int:
         con = build_registry(args.strips, mix, args.seed)
         built = time.perf_counter() - t0
         n_events = con.execute("SELECT count(*) FROM wave_event").fetchall()[0][0]
-        fast = _fast_one_to_one(_read_strips(con), load_rules())
+        fast = vectorized_rows(_read_strips(con), load_rules())
         missed = sum(any(e.startswith("inferred_p=") for e in ev) for ev in fast["evidence"])
         print(f"{mix}: {args.strips:,} strips ({n_events:,} events, built in {built:.0f} s); "
               f"vectorized paths {len(fast['index']) / args.strips:.0%} "

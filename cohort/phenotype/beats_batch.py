@@ -39,11 +39,6 @@ _MAX_AUTO_WORKERS = 8
 _FORKED_WORK: tuple[list, BeatRules] | None = None
 
 
-_Strips = StripRuns
-_COLUMNS = COLUMNS
-# the vectorized 1:1 paths (plain and one missed P), under the name the tests and benchmark use
-_fast_one_to_one = vectorized_rows
-
 
 def classify_registry(con, *, rules: BeatRules | str | None = None,
                       progress: ProgressFn | None = None, workers: int | None = None) -> int:
@@ -125,7 +120,7 @@ def _up_to_date_rows(con, r: BeatRules) -> int | None:
     return n
 
 
-def _read_strips(con) -> _Strips:
+def _read_strips(con) -> StripRuns:
     """Ordered events as numpy arrays with the QRS and P run boundaries of each strip.
 
     The strips are numbered first (temporary table phen_beat_strip, one row per ecg_key), so
@@ -145,7 +140,7 @@ def _read_strips(con) -> _Strips:
     n = len(keys)
     # rows are ordered by (strip, is_p, t): the run boundaries of key 2*strip + is_p
     bounds = np.searchsorted(2 * strip_no + is_p, np.arange(2 * n + 1))
-    return _Strips(keys, t, bounds[0:2 * n:2], bounds[1:2 * n + 1:2], bounds[1:2 * n + 1:2],
+    return StripRuns(keys, t, bounds[0:2 * n:2], bounds[1:2 * n + 1:2], bounds[1:2 * n + 1:2],
                    bounds[2:2 * n + 2:2])
 
 
@@ -156,13 +151,13 @@ def _arrow(relation) -> pa.Table:
     return out.read_all() if isinstance(out, pa.RecordBatchReader) else out
 
 
-def classify_strips(strips: _Strips, r: BeatRules, *, progress: ProgressFn | None = None,
+def classify_strips(strips: StripRuns, r: BeatRules, *, progress: ProgressFn | None = None,
                     workers: int | None = None) -> dict:
     """Column lists of beat_pattern (without keys) for all strips (workers: see
     :func:`classify_registry`)."""
     n = len(strips.keys)
-    cols: dict[str, list] = {c: [None] * n for c in _COLUMNS}
-    fast = _fast_one_to_one(strips, r)
+    cols: dict[str, list] = {c: [None] * n for c in COLUMNS}
+    fast = vectorized_rows(strips, r)
     for c, values in fast.items():
         if c != "index":
             for i, v in zip(fast["index"], values, strict=True):
@@ -183,14 +178,14 @@ def classify_strips(strips: _Strips, r: BeatRules, *, progress: ProgressFn | Non
             if progress and count % step == 0:
                 progress(n_fast + count, n)
     for i, row in zip(slow.tolist(), rows, strict=True):
-        for c, v in zip(_COLUMNS, row, strict=True):
+        for c, v in zip(COLUMNS, row, strict=True):
             cols[c][i] = v
     if progress:
         progress(n, n)
     return cols
 
 
-def _slow_items(strips: _Strips, slow: np.ndarray) -> list[tuple[list, list, int]]:
+def _slow_items(strips: StripRuns, slow: np.ndarray) -> list[tuple[list, list, int]]:
     """(P onsets, QRS onsets, non-finite onsets dropped) of the given strips, as Python lists.
 
     Non-finite onsets (NaN sorts last in DuckDB, -inf first) are dropped for all strips at
@@ -230,21 +225,24 @@ def _rows_in_workers(items: list, r: BeatRules, workers: int, progress: Progress
     """
     size = max(1, -(-len(items) // (workers * 8)))
     bounds = [(i, min(i + size, len(items))) for i in range(0, len(items), size)]
+    if "fork" not in multiprocessing.get_all_start_methods():
+        return _collect(multiprocessing.get_context("spawn"), _rows_of_chunk,
+                        [(items[a:b], r) for a, b in bounds], workers, progress, n_fast, n)
+    global _FORKED_WORK
+    _FORKED_WORK = (items, r)
+    try:
+        return _collect(multiprocessing.get_context("fork"), _rows_of_range, bounds, workers,
+                        progress, n_fast, n)
+    finally:
+        _FORKED_WORK = None
+
+
+def _collect(ctx, work: Callable, tasks: list, workers: int, progress: ProgressFn | None,
+             n_fast: int, n: int) -> list[tuple]:
+    """Rows of every task from a pool of ``workers`` processes, in task order."""
     rows: list[tuple] = []
-    if "fork" in multiprocessing.get_all_start_methods():
-        global _FORKED_WORK
-        _FORKED_WORK = (items, r)
-        try:
-            with multiprocessing.get_context("fork").Pool(workers) as pool:
-                for chunk_rows in pool.imap(_rows_of_range, bounds):
-                    rows += chunk_rows
-                    if progress:
-                        progress(n_fast + len(rows), n)
-        finally:
-            _FORKED_WORK = None
-        return rows
-    with multiprocessing.get_context("spawn").Pool(workers) as pool:
-        for chunk_rows in pool.imap(_rows_of_chunk, [(items[a:b], r) for a, b in bounds]):
+    with ctx.Pool(workers) as pool:
+        for chunk_rows in pool.imap(work, tasks):
             rows += chunk_rows
             if progress:
                 progress(n_fast + len(rows), n)
@@ -264,7 +262,7 @@ def _rows_of_chunk(args: tuple[list, BeatRules]) -> list[tuple]:
 
 
 def _row(item: tuple[list, list, int], r: BeatRules) -> tuple:
-    """beat_pattern values (without key and rules id) of one strip, in _COLUMNS order.
+    """beat_pattern values (without key and rules id) of one strip, in COLUMNS order.
 
     ``item`` holds the strip's finite P and QRS onsets and how many non-finite ones were
     dropped (see :func:`_slow_items`).

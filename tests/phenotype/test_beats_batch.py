@@ -11,11 +11,11 @@ import pytest
 
 from cohort.phenotype.beats import DEFAULT_RULES_PATH, classify_strip, load_rules
 from cohort.phenotype.beats_batch import (
-    _fast_one_to_one,
     _read_strips,
     classify_registry,
     refresh_registry,
 )
+from cohort.phenotype.beats_vector import vectorized_rows
 from cohort.registry import ensure_schema
 from cohort.sqlfiles import read_sql
 from cohort.vocabulary import BEAT_PATTERNS
@@ -118,7 +118,7 @@ def test_vectorized_path_matches_the_per_strip_classifier():
     strips["block"] = wenckebach([4, 4, 4])
     strips["m2"] = mobitz_ii([4, 4, 4])
     con = _registry(strips)
-    fast = _fast_one_to_one(_read_strips(con), load_rules())
+    fast = vectorized_rows(_read_strips(con), load_rules())
     keys = sorted(strips)
     taken = {keys[i] for i in fast["index"].tolist()}
     assert len(taken) >= 30 and not {"block", "m2"} & taken
