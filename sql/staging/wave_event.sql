@@ -21,25 +21,29 @@ typed AS (
     CROSS JOIN kind_codes AS kc
 ),
 found AS (
+    -- clean: every check below passes (cheap tests); only other rows get the full list
     SELECT
         t.*,
-        dromos_line_problem(t.line_problem, t.line_raw) AS f0,
-        dromos_problem('ecg_key', t.ecg_key, t.ecg_key IS NULL, 'missing required value') AS f1,
-        dromos_problem('t_ms', t.t_ms_raw, dromos_text(t.t_ms_raw) IS NULL, 'missing required value') AS f2,
-        dromos_number_problem('t_ms', t.t_ms_raw, t.t_ms, p.t_ms_lo, p.t_ms_hi) AS f3,
-        dromos_problem('kind', t.kind_raw, t.kind IS NULL, 'unknown wave kind (expected P or QRS)') AS f4
+        t.line_problem IS NULL AND t.ecg_key IS NOT NULL AND t.kind IS NOT NULL
+            AND t.t_ms >= p.t_ms_lo AND t.t_ms <= p.t_ms_hi AS clean
     FROM typed AS t
     CROSS JOIN ingest_param AS p
 )
 -- Problem lists are built only for rows that have one (most rows are clean).
 SELECT
-    row_k, ecg_key, t_ms, kind,
-    CASE WHEN f0 IS NOT NULL THEN [f0]
-         WHEN coalesce(f1, f2, f3, f4) IS NULL THEN []
-         ELSE list_filter([f1, f2, f3, f4], lambda x: x IS NOT NULL)
+    f.row_k, f.ecg_key, f.t_ms, f.kind,
+    CASE WHEN f.line_problem IS NOT NULL THEN [dromos_line_problem(f.line_problem, f.line_raw)]
+         WHEN f.clean THEN []
+         ELSE list_filter([
+            dromos_problem('ecg_key', f.ecg_key, f.ecg_key IS NULL, 'missing required value'),
+            dromos_problem('t_ms', f.t_ms_raw, dromos_text(f.t_ms_raw) IS NULL, 'missing required value'),
+            dromos_number_problem('t_ms', f.t_ms_raw, f.t_ms, p.t_ms_lo, p.t_ms_hi),
+            dromos_problem('kind', f.kind_raw, f.kind IS NULL, 'unknown wave kind (expected P or QRS)')
+         ], lambda x: x IS NOT NULL)
     END AS problems,
     CAST([] AS STRUCT(field VARCHAR, raw_value VARCHAR, repaired_value VARCHAR, rule VARCHAR)[]) AS repairs
-FROM found;
+FROM found AS f
+CROSS JOIN ingest_param AS p;
 
 -- The staged rows as the checks see them (classify.sql): the record's row_k (its position for a
 -- CSV source, see loader._check_positions), its key (and a hash of it) and a hash of its content,
