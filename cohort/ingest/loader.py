@@ -30,12 +30,13 @@ from cohort.sqlfiles import read_sql
 
 VALIDATION_RULES = Path(__file__).resolve().parent / "validation-v1.toml"
 # Per table: row-local staging statement, then the statement checking registry references.
+# Per table: row-local staging, registry references, content hashes of the records that need one.
 _STAGE_SQL = {
-    "person": ("staging/person.sql", "staging/person_refs.sql"),
-    "ecg": ("staging/ecg.sql", "staging/ecg_refs.sql"),
-    "wave_event": ("staging/wave_event.sql", "staging/wave_event_refs.sql"),
-    "procedure": ("staging/coded_event.sql", "staging/coded_event_refs.sql"),
-    "diagnosis": ("staging/coded_event.sql", "staging/coded_event_refs.sql"),
+    "person": ("staging/person.sql", "staging/person_refs.sql", "staging/content.sql"),
+    "ecg": ("staging/ecg.sql", "staging/ecg_refs.sql", "staging/ecg_content.sql"),
+    "wave_event": ("staging/wave_event.sql", "staging/wave_event_refs.sql", "staging/content.sql"),
+    "procedure": ("staging/coded_event.sql", "staging/coded_event_refs.sql", "staging/content.sql"),
+    "diagnosis": ("staging/coded_event.sql", "staging/coded_event_refs.sql", "staging/content.sql"),
 }
 _CODE_MAPS = {"person": {"sex_codes": "sex"}, "ecg": {"read_kind_codes": "read_kind"}, "wave_event": {"kind_codes": "kind"}}
 
@@ -109,15 +110,14 @@ def _stage_rows(con, table: TableMapping) -> None:
         con.execute(f"CREATE OR REPLACE TEMP VIEW target_rows AS SELECT * FROM {table.table}")
     params = {
         "person": {"date_formats": options.get("date_formats")},
-        "ecg": {
-            "timestamp_formats": options.get("timestamp_formats"),
-            "statement_separator": options.get("statement_separator"),
-            "code_separator": options.get("code_separator"),
-        },
+        "ecg": {"timestamp_formats": options.get("timestamp_formats")},
         "wave_event": {},
         "procedure": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
         "diagnosis": {"date_formats": options.get("date_formats"), "default_code_system": options.get("default_code_system")},
     }[table.table]
+    if table.table == "ecg":  # read by the view stage_checked and ecg_content.sql
+        con.execute("SET VARIABLE dromos_statement_separator = ?", [options.get("statement_separator")])
+        con.execute("SET VARIABLE dromos_code_separator = ?", [options.get("code_separator")])
     for statement in con.extract_statements(read_sql(_STAGE_SQL[table.table][0])):
         con.execute(statement.query, {k: v for k, v in params.items() if k in statement.named_parameters})
 
@@ -128,6 +128,8 @@ def _stage_checks(con, scanned: sources.ScanResult) -> None:
     scanned.finish(con)
     con.execute(read_sql(_STAGE_SQL[scanned.table][1]))
     _write_repeated_keys(con)
+    con.execute(read_sql("staging/content_needed.sql"))
+    con.execute(read_sql(_STAGE_SQL[scanned.table][2]))
     con.execute(read_sql("staging/classify.sql"), {"header_lines": scanned.header_lines})
     # Records are numbered by file line: empty lines (skipped by the reader) are looked for only
     # when some record will be reported, which spares a pass over a clean file.
@@ -349,7 +351,8 @@ def _load_scanned(
 
 
 _TEMPORARIES = (
-    "stage_outcome", "stage_checked", "stage_typed", "stage_repeats", "raw_arrow", "skip_offset",
+    "stage_outcome", "stage_checked", "stage_typed", "stage_repeats", "stage_content",
+    "stage_content_needed", "raw_arrow", "skip_offset",
     "dromos_rejects", "dromos_reject_scans", "src", "raw_numbered", "raw_source", "target_rows",
 )
 

@@ -2,7 +2,8 @@
 -- Grain: one row per staged record that is NOT simply loaded (problems, a key already in the
 -- registry, a key repeated in the file) or that was repaired; every other record loads.
 -- Input: stage_checked (row_k, dedup_key (a row of the key columns), key_hash, problems, repairs,
--- content_hash, ...), stage_repeats (key_hash: the hashes more than one record without problems
+-- ...), stage_content (row_k, content_hash of the records that need one: content_needed.sql),
+-- stage_repeats (key_hash: the hashes more than one record without problems
 -- has; found by the loader with a sort, see loader._write_repeated_keys),
 -- stage_refs (row_k, problems, registry_hash, registry_source: registry references of the
 -- few records that have them) and skip_offset (k_start, lines_before): the source
@@ -12,12 +13,13 @@
 -- content is identical and is quarantined as a conflict otherwise (nothing is overwritten).
 CREATE OR REPLACE TEMP TABLE stage_outcome AS
 WITH candidates AS (
-    SELECT c.row_k, c.dedup_key, c.repairs, c.content_hash,
+    SELECT c.row_k, c.dedup_key, c.repairs, h.content_hash,
            list_concat(c.problems, coalesce(r.problems, [])) AS problems,
            r.registry_hash, r.registry_source,
            len(c.problems) = 0 AND coalesce(len(r.problems), 0) = 0 AS clean
     FROM stage_checked AS c
     LEFT JOIN stage_refs AS r ON r.row_k = c.row_k
+    LEFT JOIN stage_content AS h ON h.row_k = c.row_k
     WHERE len(c.problems) > 0
        OR r.row_k IS NOT NULL
        OR len(c.repairs) > 0

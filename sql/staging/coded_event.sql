@@ -42,6 +42,7 @@ FROM checked AS c;
 CREATE OR REPLACE TEMP VIEW stage_checked AS
 SELECT
     * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    rowid AS position,
     row(person_key, date, code_system, code) AS dedup_key,
     hash(person_key, date, code_system, code) AS key_hash,
     hash(person_key, date, code_system, code) AS content_hash

@@ -1,11 +1,12 @@
 -- Stage an ECG export (one row per read of a tracing).
 -- Grain: one row per source record. Key: (ecg_key, read_kind).
 -- Input: view src, temp tables code_map and ingest_param (ranges, unit factors, date bounds);
--- parameters $timestamp_formats, $statement_separator, $code_separator.
--- Output: temp table stage_typed (typed columns, problems, repairs; raw text is kept only
--- inside problems; exposed as view stage_checked). Row-local checks only: references to the
--- registry (person known, dates within life, key already loaded) are checked next by
--- ecg_refs.sql on the materialized rows. No hash join between src and the output (the code
+-- parameter $timestamp_formats; the view stage_checked reads the session variables
+-- dromos_statement_separator and dromos_code_separator.
+-- Output: temp table stage_typed (typed columns, problems, repairs, statement text; other raw
+-- text is kept only inside problems; exposed as view stage_checked). Row-local checks only:
+-- references to the registry (person known, dates within life, key already loaded) are
+-- checked next by ecg_refs.sql on the materialized rows. No hash join between src and the output (the code
 -- lookup is a map): rows stay in file order, which is how CSV records are numbered.
 -- Each raw value is parsed once; problem and repair lists are built only for rows that have one
 -- (most rows are clean, and building lists for every row dominated the cost): a cheap `clean`
@@ -35,8 +36,8 @@ parsed AS (
         s.p_axis AS p_axis_raw, TRY_CAST(s.p_axis AS DOUBLE) AS p_axis_value,
         s.qrs_axis AS qrs_axis_raw, TRY_CAST(s.qrs_axis AS DOUBLE) AS qrs_axis_value,
         s.t_axis AS t_axis_raw, TRY_CAST(s.t_axis AS DOUBLE) AS t_axis_value,
-        dromos_split(s.statements, $statement_separator) AS statements,
-        dromos_split(s.statement_codes, $code_separator) AS statement_codes,
+        s.statements AS statements_text,
+        s.statement_codes AS statement_codes_text,
         -- an interval declared in ms that can only be seconds (validation rules) is converted
         p.pr_ms_factor = 1 AND pr_value >= p.seconds_lower AND pr_value < p.seconds_upper AS pr_in_seconds,
         p.qrs_ms_factor = 1 AND qrs_value >= p.seconds_lower AND qrs_value < p.seconds_upper AS qrs_in_seconds,
@@ -80,7 +81,8 @@ SELECT
     dromos_axis(c.p_axis_value) AS p_axis,
     dromos_axis(c.qrs_axis_value) AS qrs_axis,
     dromos_axis(c.t_axis_value) AS t_axis,
-    c.statements, c.statement_codes,
+    -- split into lists in the view below, when copied into the registry (and by ecg_content.sql)
+    c.statements_text, c.statement_codes_text,
     CASE WHEN line_problem IS NOT NULL THEN [dromos_line_problem(line_problem, line_raw)]
          WHEN clean THEN []
          ELSE list_filter([
@@ -106,19 +108,21 @@ SELECT
         CASE WHEN qrs_in_seconds THEN {'field': 'qrs_ms', 'raw_value': qrs_ms_raw, 'repaired_value': CAST(qrs_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
         CASE WHEN qt_in_seconds THEN {'field': 'qt_ms', 'raw_value': qt_ms_raw, 'repaired_value': CAST(qt_ms AS VARCHAR), 'rule': 'interval given in seconds'} END,
         CASE WHEN qtc_in_seconds THEN {'field': 'qtc_ms', 'raw_value': qtc_ms_raw, 'repaired_value': CAST(qtc_ms AS VARCHAR), 'rule': 'interval given in seconds'} END
-    ], lambda x: x IS NOT NULL) ELSE [] END AS repairs,
-    -- stored (not left to the view): classify.sql then never reads the statement lists
-    hash(c.person_key, c.acquired_at, c.site, c.ventricular_rate, c.atrial_rate, c.pr_ms, c.qrs_ms,
-         c.qt_ms, c.qtc_ms, dromos_axis(c.p_axis_value), dromos_axis(c.qrs_axis_value),
-         dromos_axis(c.t_axis_value), c.statements, c.statement_codes) AS content_hash
+    ], lambda x: x IS NOT NULL) ELSE [] END AS repairs
 FROM found AS c
 CROSS JOIN ingest_param AS p;
 
 -- The staged rows as the checks see them (classify.sql): the record's row_k (its position for a
--- CSV source, see loader._check_positions) and its key (and a hash of it), computed when used.
+-- CSV source, see loader._check_positions), its storage position, its key (and a hash of it),
+-- and the statement lists, split from their text when read (the separators are session
+-- variables set by the loader). The content hash is ecg_content.sql's, for the few records
+-- that need one.
 CREATE OR REPLACE TEMP VIEW stage_checked AS
 SELECT
-    * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    * EXCLUDE (statements_text, statement_codes_text) REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    dromos_split(statements_text, getvariable('dromos_statement_separator')) AS statements,
+    dromos_split(statement_codes_text, getvariable('dromos_code_separator')) AS statement_codes,
+    rowid AS position,
     row(ecg_key, read_kind) AS dedup_key,
     hash(ecg_key, read_kind) AS key_hash
 FROM stage_typed;

@@ -68,6 +68,7 @@ FROM checked AS c;
 CREATE OR REPLACE TEMP VIEW stage_checked AS
 SELECT
     * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    rowid AS position,
     row(person_key) AS dedup_key,
     hash(person_key) AS key_hash,
     hash(person_key, birth_date, sex, site, death_date, followup_end) AS content_hash

@@ -51,6 +51,7 @@ CROSS JOIN ingest_param AS p;
 CREATE OR REPLACE TEMP VIEW stage_checked AS
 SELECT
     * REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    rowid AS position,
     row(ecg_key, t_ms, kind) AS dedup_key,
     hash(ecg_key, t_ms, kind) AS key_hash,
     hash(ecg_key, t_ms, kind) AS content_hash

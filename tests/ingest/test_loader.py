@@ -172,6 +172,37 @@ def test_duplicates_within_file_and_against_registry(registry, persons_file, tmp
     _assert_log_reconciles(registry)
 
 
+def test_repeated_reads_are_compared_by_their_statement_lists(registry, persons_file, tmp_path):
+    """Content is compared after splitting and trimming: spacing alone is no difference."""
+    load_file(registry, persons_file)
+    first = write_csv(tmp_path / "ecgs_a.csv", ECG_HEADER, [
+        ecg_row("T1", "P1", statements="Sinus rhythm | RBBB", statement_codes="SNOMED:1;SNOMED:2"),
+        ecg_row("T1", "P1", statements=" Sinus rhythm |  RBBB ", statement_codes="SNOMED:1 ; SNOMED:2"),
+        ecg_row("T1", "P1", statements="Sinus rhythm | LBBB", statement_codes="SNOMED:1;SNOMED:2"),
+        ecg_row("T1", "P1", statements="Sinus rhythm | RBBB", statement_codes="SNOMED:1"),
+    ])
+    result = load_file(registry, first)
+    assert (result.rows_loaded, result.rows_duplicate, result.rows_quarantined) == (1, 1, 2)
+    assert [r[0] for r in _quarantine(registry)] == [3, 4]
+    second = write_csv(tmp_path / "ecgs_b.csv", ECG_HEADER, [
+        ecg_row("T1", "P1", statements="Sinus rhythm | RBBB | ", statement_codes=";SNOMED:1;SNOMED:2;"),
+        ecg_row("T1", "P1", read_kind="confirmed", statements="Sinus rhythm"),
+    ])
+    result = load_file(registry, second)
+    assert (result.rows_loaded, result.rows_duplicate, result.rows_quarantined) == (1, 1, 0)
+    third = write_csv(tmp_path / "ecgs_c.csv", ECG_HEADER, [
+        ecg_row("T1", "P1", read_kind="confirmed", statements="Sinus rhythm | RBBB"),
+    ])
+    result = load_file(registry, third)
+    assert (result.rows_loaded, result.rows_duplicate, result.rows_quarantined) == (0, 0, 1)
+    stored = registry.execute(
+        "SELECT read_kind, statements, statement_codes FROM ecg ORDER BY read_kind"
+    ).fetchall()
+    assert stored == [("confirmed", ["Sinus rhythm"], []),
+                      ("machine", ["Sinus rhythm", "RBBB"], ["SNOMED:1", "SNOMED:2"])]
+    _assert_log_reconciles(registry)
+
+
 def test_confirmed_read_supersedes_machine_read_in_the_downstream_view(registry, persons_file, tmp_path):
     load_file(registry, persons_file)
     load_file(registry, write_csv(tmp_path / "ecgs.csv", ECG_HEADER, [
