@@ -83,6 +83,9 @@ SELECT
     dromos_axis(c.t_axis_value) AS t_axis,
     -- split into lists in the view below, when copied into the registry (and by ecg_content.sql)
     c.statements_text, c.statement_codes_text,
+    coalesce(dromos_tidy_list(c.statements_text, getvariable('dromos_statement_separator')), true)
+        AND coalesce(dromos_tidy_list(c.statement_codes_text, getvariable('dromos_code_separator')), true)
+        AS lists_tidy,
     CASE WHEN line_problem IS NOT NULL THEN [dromos_line_problem(line_problem, line_raw)]
          WHEN clean THEN []
          ELSE list_filter([
@@ -116,13 +119,25 @@ CROSS JOIN ingest_param AS p;
 -- CSV source, see loader._check_positions), its storage position, its key (and a hash of it),
 -- and the statement lists, split from their text when read (the separators are session
 -- variables set by the loader). The content hash is ecg_content.sql's, for the few records
--- that need one.
+-- that need one. Rows with tidy lists take the plain split; the others (few) dromos_split, in
+-- their own branch: a CASE holding its lambdas would cost on every row.
 CREATE OR REPLACE TEMP VIEW stage_checked AS
 SELECT
-    * EXCLUDE (statements_text, statement_codes_text) REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    * EXCLUDE (statements_text, statement_codes_text, lists_tidy) REPLACE (dromos_row_k(row_k, rowid) AS row_k),
+    coalesce(string_split(statements_text, getvariable('dromos_statement_separator')), []) AS statements,
+    coalesce(string_split(statement_codes_text, getvariable('dromos_code_separator')), []) AS statement_codes,
+    rowid AS position,
+    row(ecg_key, read_kind) AS dedup_key,
+    hash(ecg_key, read_kind) AS key_hash
+FROM stage_typed
+WHERE lists_tidy
+UNION ALL
+SELECT
+    * EXCLUDE (statements_text, statement_codes_text, lists_tidy) REPLACE (dromos_row_k(row_k, rowid) AS row_k),
     dromos_split(statements_text, getvariable('dromos_statement_separator')) AS statements,
     dromos_split(statement_codes_text, getvariable('dromos_code_separator')) AS statement_codes,
     rowid AS position,
     row(ecg_key, read_kind) AS dedup_key,
     hash(ecg_key, read_kind) AS key_hash
-FROM stage_typed;
+FROM stage_typed
+WHERE NOT lists_tidy;

@@ -42,19 +42,22 @@ CREATE OR REPLACE TEMP MACRO dromos_repair(field_name, raw, factor, s_lo, s_hi, 
 CREATE OR REPLACE TEMP MACRO dromos_axis(value) AS CASE WHEN value > 180 THEN value - 360 ELSE value END;
 -- Date from text with any of the given formats (a list known when the statement is bound).
 CREATE OR REPLACE TEMP MACRO dromos_date(x, formats) AS CAST(try_strptime(dromos_text(x), formats) AS DATE);
+-- True when splitting x at sep needs no trimming and drops no empty item (so the plain split
+-- is the whole answer): ASCII with no blank at the ends (dromos_untrimmed_ok), no blank next to
+-- a separator and no empty item (no separator at an end, none doubled). For a separator with a
+-- blank at both ends (' | ') those three tests amount to "no double blank" (each pattern holds
+-- one), a single scan. NULL when x is NULL.
+CREATE OR REPLACE TEMP MACRO dromos_tidy_list(x, sep) AS
+    x <> '' AND dromos_untrimmed_ok(x) AND NOT starts_with(x, sep) AND NOT ends_with(x, sep)
+    AND CASE WHEN starts_with(sep, ' ') AND ends_with(sep, ' ') THEN NOT contains(x, '  ')
+             ELSE NOT contains(x, sep || sep) AND NOT contains(x, ' ' || sep)
+                  AND NOT contains(x, sep || ' ') END;
 -- Split a field holding several values; items are trimmed and empty items dropped. Tidy text
--- (no stray blanks or empty items) takes the plain split, which is several times cheaper;
--- tidy means ASCII with no blank at the ends (dromos_untrimmed_ok), none next to a separator and
--- no empty item (no separator at an end, none doubled). For a separator with a blank at both ends
--- (' | ') those three tests amount to "no double blank" (each pattern holds one), a single scan.
+-- (dromos_tidy_list) takes the plain split, which is several times cheaper.
 CREATE OR REPLACE TEMP MACRO dromos_split(x, sep) AS
     CASE
         WHEN x IS NULL THEN []
-        WHEN x <> '' AND dromos_untrimmed_ok(x) AND NOT starts_with(x, sep) AND NOT ends_with(x, sep)
-             AND CASE WHEN starts_with(sep, ' ') AND ends_with(sep, ' ') THEN NOT contains(x, '  ')
-                      ELSE NOT contains(x, sep || sep) AND NOT contains(x, ' ' || sep)
-                           AND NOT contains(x, sep || ' ') END
-            THEN string_split(x, sep)
+        WHEN dromos_tidy_list(x, sep) THEN string_split(x, sep)
         ELSE list_filter(list_transform(string_split(x, sep), lambda item: trim(item)), lambda item: item <> '')
     END;
 -- The problem of a CSV line with a wrong number of fields (NULL when the line is fine; see
