@@ -40,9 +40,11 @@ DERIVED_TABLES = (
     "unrecognised_statement",
     "person_category",
     "person_conduction",
-    "ecg_state",
 )
-VIEWS = ("ecg_conduction",)
+# Views over the stored tables; ecg_state was a table before (dropped and replaced on the next
+# run: the view gives the same rows for every rule set from ecg_conduction).
+VIEWS = ("ecg_conduction", "ecg_state")
+FORMER_TABLES = ("ecg_state",)
 RUN_LOG = "phenotype_run"
 STEPS = (
     "rules",
@@ -55,7 +57,6 @@ STEPS = (
     "unrecognised_statement",
     "person_category",
     "person_conduction",
-    "ecg_state",
 )
 FLAG_COLUMNS = (
     "rbbb", "incomplete_rbbb", "lbbb", "incomplete_lbbb", "lafb", "lpfb", "bifascicular",
@@ -303,7 +304,7 @@ def drop_phenotype_tables(con) -> None:
 
 def _check_views_writable(con) -> None:
     for name in VIEWS:
-        if _object_type(con, name) not in (None, "VIEW"):
+        if name not in FORMER_TABLES and _object_type(con, name) not in (None, "VIEW"):
             raise RegistryError(
                 f"{name} is a table written by an older Dromos version; run 'dromos phenotype "
                 "--rebuild' to drop the phenotype tables of all rule sets and rebuild them"
@@ -311,9 +312,11 @@ def _check_views_writable(con) -> None:
 
 
 def _create_views(con) -> None:
-    """The view ecg_conduction over the per-ECG core and the per-signature categories."""
+    """The views: ecg_conduction (per-ECG core + per-signature categories) and ecg_state."""
     _check_views_writable(con)
     for name in VIEWS:
+        if name in FORMER_TABLES and _object_type(con, name) == "BASE TABLE":
+            con.execute(f"DROP TABLE {name}")
         con.execute(f"CREATE OR REPLACE VIEW {name} AS " + read_sql(f"phenotype/{name}_view.sql"))
 
 

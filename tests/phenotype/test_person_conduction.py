@@ -1,4 +1,4 @@
-"""Per-person timelines (person_conduction, person_category) and the per-ECG state table."""
+"""Per-person timelines (person_conduction, person_category) and the per-ECG state view."""
 
 from __future__ import annotations
 
@@ -120,6 +120,21 @@ def test_ecg_state_one_row_per_ecg(timeline):
         "SELECT count(*), count(DISTINCT ecg_key) FROM ecg_state WHERE rule_set_id = 'default-v1'"
     ).fetchall()[0]
     assert n == (7, 7)
+
+
+def test_ecg_state_table_of_an_older_version_becomes_the_view(timeline):
+    """Registries phenotyped when ecg_state was stored get the view on the next run, same rows."""
+    con = timeline.con
+    query = "SELECT * FROM ecg_state WHERE rule_set_id = 'persist90-v1' ORDER BY ecg_key"
+    expected = con.execute(query).fetchall()
+    con.execute("DROP VIEW ecg_state")
+    con.execute("CREATE TABLE ecg_state AS SELECT 'stale' AS person_key, 'default-v1' AS rule_set_id")
+    timeline.run("default-v1")
+    kind = con.execute(
+        "SELECT table_type FROM information_schema.tables WHERE table_name = 'ecg_state'"
+    ).fetchall()
+    assert kind == [("VIEW",)]
+    assert con.execute(query).fetchall() == expected  # the other rule set's rows are all there
 
 
 def test_persons_missing_from_person_table_stay_apart(reg):

@@ -1,40 +1,37 @@
--- ecg_state: the conduction state of each person at each of their ECGs, in time order, for
--- multi-state and time-updated analyses.
--- Grain: one row per ecg_key, for rule set $rule_set_id, ordered within person by
--- (acquired_at, ecg_key) as ecg_seq. state comes from the rule file's [state] map of the AV
--- category, except 'paced' from the first paced ECG on, or from an implant procedure on or
--- before the ECG date (paced_by says which; the procedure when both); 'paced' is absorbing.
--- state_rank is the position in [state] order (NULL for the unknown state);
--- worst_state_rank_so_far and last_known_state carry the history forward; last_known_pr_ms is
--- the last PR measured where PR was assessable. Other columns: join ecg_conduction by ecg_key.
+-- ecg_state (view): the conduction state of each person at each of their ECGs, in time order,
+-- for multi-state and time-updated analyses.
+-- Grain: one row per ecg_key per rule_set_id, ordered within person by (acquired_at, ecg_key)
+-- as ecg_seq. Computed when read (a filter on rule_set_id reaches the per-ECG scan), so a
+-- phenotype run does not write a second million-row per-ECG table; the few analyses that use it
+-- pay for it. state comes from the rule file's [state] map of the AV category, except 'paced'
+-- from the first paced ECG on, or from an implant procedure on or before the ECG date (paced_by
+-- says which; the procedure when both); 'paced' is absorbing. state_rank is the position in
+-- [state] order (NULL for the unknown state); worst_state_rank_so_far and last_known_state carry
+-- the history forward; last_known_pr_ms is the last PR measured where PR was assessable. Other
+-- columns: join ecg_conduction by ecg_key and rule_set_id.
 WITH
-param AS (
-    SELECT * FROM rule_param WHERE rule_set_id = $rule_set_id
-),
 implant AS (
-    SELECT x.person_key, min(x.date) AS implant_date
+    SELECT r.rule_set_id, x.person_key, min(x.date) AS implant_date
     FROM procedure AS x
     JOIN rule_code AS r
-        ON r.rule_set_id = $rule_set_id
-        AND r.list_name = 'pacemaker_implant'
+        ON r.list_name = 'pacemaker_implant'
         AND r.code_system = upper(replace(replace(x.code_system, '-', ''), ' ', ''))
         AND r.code = upper(replace(trim(x.code), '.', ''))
-    GROUP BY x.person_key
+    GROUP BY r.rule_set_id, x.person_key
 ),
 ecgs AS (
     SELECT
-        c.person_key, c.ecg_key, c.acquired_at, c.av_category, c.av_grade, c.pr_assessable,
-        c.pr_ms, g.state AS av_state,
+        c.rule_set_id, c.person_key, c.ecg_key, c.acquired_at, c.av_category, c.av_grade,
+        c.pr_assessable, c.pr_ms, g.state AS av_state,
         c.rhythm_class = 'paced' OR c.ventricular_conduction = 'paced' AS paced_ecg
     FROM ecg_conduction AS c
     JOIN rule_category AS g ON g.rule_set_id = c.rule_set_id AND g.av_category = c.av_category
-    WHERE c.rule_set_id = $rule_set_id
 ),
 first_paced AS (
-    SELECT person_key, min(acquired_at) AS first_paced_at
+    SELECT rule_set_id, person_key, min(acquired_at) AS first_paced_at
     FROM ecgs
     WHERE paced_ecg
-    GROUP BY person_key
+    GROUP BY rule_set_id, person_key
 ),
 stated AS (
     SELECT
@@ -42,8 +39,8 @@ stated AS (
         coalesce(i.implant_date <= CAST(e.acquired_at AS DATE), false) AS after_implant,
         coalesce(e.acquired_at >= f.first_paced_at, false) AS after_paced_ecg
     FROM ecgs AS e
-    LEFT JOIN implant AS i ON i.person_key = e.person_key
-    LEFT JOIN first_paced AS f ON f.person_key = e.person_key
+    LEFT JOIN implant AS i ON i.rule_set_id = e.rule_set_id AND i.person_key = e.person_key
+    LEFT JOIN first_paced AS f ON f.rule_set_id = e.rule_set_id AND f.person_key = e.person_key
 ),
 ranked AS (
     SELECT
@@ -58,12 +55,12 @@ ranked AS (
             CASE WHEN s.after_paced_ecg OR s.after_implant THEN 'paced' ELSE s.av_state END
         ) AS state_rank
     FROM stated AS s
-    CROSS JOIN param AS p
+    JOIN rule_param AS p ON p.rule_set_id = s.rule_set_id
 )
 SELECT
     r.person_key,
     r.ecg_key,
-    $rule_set_id AS rule_set_id,
+    r.rule_set_id,
     r.acquired_at,
     row_number() OVER w AS ecg_seq,
     r.av_category,
@@ -81,6 +78,6 @@ SELECT
     r.state IS DISTINCT FROM lag(r.state) OVER w AS state_changed
 FROM ranked AS r
 WINDOW w AS (
-    PARTITION BY r.person_key ORDER BY r.acquired_at, r.ecg_key
+    PARTITION BY r.rule_set_id, r.person_key ORDER BY r.acquired_at, r.ecg_key
     ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
 )
