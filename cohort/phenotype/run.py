@@ -38,13 +38,12 @@ DERIVED_TABLES = (
     "conduction_signature",
     "ecg_conduction_core",
     "unrecognised_statement",
-    "person_category",
     "person_conduction",
 )
-# Views over the stored tables; ecg_state was a table before (dropped and replaced on the next
-# run: the view gives the same rows for every rule set from ecg_conduction).
-VIEWS = ("ecg_conduction", "ecg_state")
-FORMER_TABLES = ("ecg_state",)
+# Views over the stored tables; ecg_state and person_category were tables before (dropped and
+# replaced on the next run: the views give the same rows for every rule set from ecg_conduction).
+VIEWS = ("ecg_conduction", "ecg_state", "person_category")
+FORMER_TABLES = ("ecg_state", "person_category")
 RUN_LOG = "phenotype_run"
 STEPS = (
     "rules",
@@ -55,7 +54,6 @@ STEPS = (
     "conduction_signature",
     "ecg_conduction_core",
     "unrecognised_statement",
-    "person_category",
     "person_conduction",
 )
 FLAG_COLUMNS = (
@@ -312,7 +310,8 @@ def _check_views_writable(con) -> None:
 
 
 def _create_views(con) -> None:
-    """The views: ecg_conduction (per-ECG core + per-signature categories) and ecg_state."""
+    """The views: ecg_conduction (per-ECG core + per-signature categories), ecg_state and
+    person_category."""
     _check_views_writable(con)
     for name in VIEWS:
         if name in FORMER_TABLES and _object_type(con, name) == "BASE TABLE":

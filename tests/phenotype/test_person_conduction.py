@@ -1,4 +1,4 @@
-"""Per-person timelines (person_conduction, person_category) and the per-ECG state view."""
+"""Per-person timelines (person_conduction, the view person_category) and the per-ECG state view."""
 
 from __future__ import annotations
 
@@ -122,16 +122,18 @@ def test_ecg_state_one_row_per_ecg(timeline):
     assert n == (7, 7)
 
 
-def test_ecg_state_table_of_an_older_version_becomes_the_view(timeline):
-    """Registries phenotyped when ecg_state was stored get the view on the next run, same rows."""
+@pytest.mark.parametrize("name", ["ecg_state", "person_category"])
+def test_table_of_an_older_version_becomes_the_view(timeline, name):
+    """Registries phenotyped when these were stored get the views on the next run, same rows."""
     con = timeline.con
-    query = "SELECT * FROM ecg_state WHERE rule_set_id = 'persist90-v1' ORDER BY ecg_key"
+    query = f"SELECT * FROM {name} WHERE rule_set_id = 'persist90-v1' ORDER BY ALL"
     expected = con.execute(query).fetchall()
-    con.execute("DROP VIEW ecg_state")
-    con.execute("CREATE TABLE ecg_state AS SELECT 'stale' AS person_key, 'default-v1' AS rule_set_id")
+    assert expected
+    con.execute(f"DROP VIEW {name}")
+    con.execute(f"CREATE TABLE {name} AS SELECT 'stale' AS person_key, 'default-v1' AS rule_set_id")
     timeline.run("default-v1")
     kind = con.execute(
-        "SELECT table_type FROM information_schema.tables WHERE table_name = 'ecg_state'"
+        "SELECT table_type FROM information_schema.tables WHERE table_name = ?", [name]
     ).fetchall()
     assert kind == [("VIEW",)]
     assert con.execute(query).fetchall() == expected  # the other rule set's rows are all there
