@@ -29,7 +29,6 @@ from cohort.registry import ensure_schema
 from cohort.sqlfiles import read_sql
 
 VALIDATION_RULES = Path(__file__).resolve().parent / "validation-v1.toml"
-# Per table: row-local staging statement, then the statement checking registry references.
 # Per table: row-local staging, registry references, content hashes of the records that need one.
 _STAGE_SQL = {
     "person": ("staging/person.sql", "staging/person_refs.sql", "staging/content.sql"),
