@@ -6,8 +6,9 @@
 -- Output: temp table stage_typed (typed columns, problems, repairs, statement text; other raw
 -- text is kept only inside problems; exposed as view stage_checked). Row-local checks only:
 -- references to the registry (person known, dates within life, key already loaded) are
--- checked next by ecg_refs.sql on the materialized rows. No hash join between src and the output (the code
--- lookup is a map): rows stay in file order, which is how CSV records are numbered.
+-- checked next by ecg_refs.sql on the materialized rows. No hash join between src and the
+-- output (the code lookup is a map): rows stay in file order, which is how CSV records are
+-- numbered.
 -- Each raw value is parsed once; problem and repair lists are built only for rows that have one
 -- (most rows are clean, and building lists for every row dominated the cost): a cheap `clean`
 -- test runs on every row, the full checks only where it fails.
