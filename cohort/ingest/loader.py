@@ -144,11 +144,14 @@ def _write_repeated_keys(con) -> None:
 
     Sorting the 64-bit hashes (numpy) finds them several times faster than a hash aggregate
     over keys that are nearly all distinct; classify.sql then compares the keys themselves.
+    Session variable ``dromos_keys_repeat``: whether any hash repeats (when none does, the
+    usual case, the checks skip hashing every key again).
     """
     found = con.execute("SELECT key_hash FROM stage_checked WHERE len(problems) = 0").fetchnumpy()
     hashes = np.sort(np.asarray(found["key_hash"], dtype=np.uint64))
     repeated = np.unique(hashes[1:][hashes[1:] == hashes[:-1]])
     con.execute("CREATE OR REPLACE TEMP TABLE stage_repeats (key_hash UBIGINT)")
+    con.execute("SET VARIABLE dromos_keys_repeat = ?", [bool(len(repeated))])
     if len(repeated):
         con.register("_repeated_hashes", pa.table({"key_hash": pa.array(repeated, pa.uint64())}))
         con.execute("INSERT INTO stage_repeats SELECT key_hash FROM _repeated_hashes")

@@ -4,7 +4,8 @@
 -- Input: stage_checked (row_k, dedup_key (a row of the key columns), key_hash, problems, repairs,
 -- ...), stage_content (row_k, content_hash of the records that need one: content_needed.sql),
 -- stage_repeats (key_hash: the hashes more than one record without problems
--- has; found by the loader with a sort, see loader._write_repeated_keys),
+-- has; found by the loader with a sort, see loader._write_repeated_keys; the session variable
+-- dromos_keys_repeat is false when it is empty, so that test folds away),
 -- stage_refs (row_k, problems, registry_hash, registry_source: registry references of the
 -- few records that have them) and skip_offset (k_start, lines_before): the source
 -- line of the k-th parsed row is k + lines_before of the last k_start <= k (header, empty and
@@ -23,7 +24,8 @@ WITH candidates AS (
     WHERE len(c.problems) > 0
        OR r.row_k IS NOT NULL
        OR len(c.repairs) > 0
-       OR (len(c.problems) = 0 AND c.key_hash IN (SELECT key_hash FROM stage_repeats))
+       OR (getvariable('dromos_keys_repeat') AND len(c.problems) = 0
+           AND c.key_hash IN (SELECT key_hash FROM stage_repeats))
 ),
 ranked AS (
     SELECT
