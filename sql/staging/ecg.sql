@@ -14,7 +14,8 @@
 -- test runs on every row, the full checks only where it fails.
 CREATE OR REPLACE TEMP TABLE stage_typed AS
 WITH read_kind_codes AS (
-    SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'read_kind'
+    SELECT codes, dromos_exact_codes(codes) AS exact
+    FROM (SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'read_kind')
 ),
 parsed AS (
     SELECT
@@ -27,7 +28,7 @@ parsed AS (
         CAST(try_strptime(dromos_text(s.acquired_at), $timestamp_formats) AS TIMESTAMP) AS acquired_at,
         dromos_text(s.site) AS site,
         s.read_kind AS read_kind_raw,
-        CASE WHEN s.read_kind IS NULL THEN 'machine' ELSE rk.codes[lower(dromos_text(s.read_kind))] END AS read_kind,
+        CASE WHEN s.read_kind IS NULL THEN 'machine' ELSE dromos_code(s.read_kind, rk.codes, rk.exact) END AS read_kind,
         s.ventricular_rate AS ventricular_rate_raw, TRY_CAST(s.ventricular_rate AS DOUBLE) AS ventricular_rate,
         s.atrial_rate AS atrial_rate_raw, TRY_CAST(s.atrial_rate AS DOUBLE) AS atrial_rate,
         s.pr_ms AS pr_ms_raw, TRY_CAST(s.pr_ms AS DOUBLE) AS pr_value,

@@ -38,6 +38,15 @@ CREATE OR REPLACE TEMP MACRO dromos_repair(field_name, raw, factor, s_lo, s_hi, 
             THEN {'field': field_name, 'raw_value': CAST(raw AS VARCHAR),
                   'repaired_value': CAST(dromos_number(raw) * 1000 AS VARCHAR), 'rule': rule}
     END;
+-- A code map's codes that map to themselves (for dromos_code): what a raw value already in
+-- canonical form looks like.
+CREATE OR REPLACE TEMP MACRO dromos_exact_codes(codes) AS
+    list_filter(map_values(codes), lambda c: c <> '' AND trim(c) = c AND codes[lower(c)] = c);
+-- Canonical code of a raw value through a code map (keys: lower-cased source values). A raw
+-- value that is already one of the `exact` codes is its own code (same answer, and it spares
+-- lower() and the map lookup on most rows); NULL when the value is not mapped.
+CREATE OR REPLACE TEMP MACRO dromos_code(x, codes, exact) AS
+    CASE WHEN list_contains(exact, x) THEN x ELSE codes[lower(dromos_text(x))] END;
 -- Frontal-plane axis in (-180, 180]: machines report -90..270 or -180..180.
 CREATE OR REPLACE TEMP MACRO dromos_axis(value) AS CASE WHEN value > 180 THEN value - 360 ELSE value END;
 -- Date from text with any of the given formats (a list known when the statement is bound).

@@ -6,7 +6,8 @@
 -- classify.sql decides. No hash join between src and the output: rows stay in file order.
 CREATE OR REPLACE TEMP TABLE stage_typed AS
 WITH sex_codes AS (
-    SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'sex'
+    SELECT codes, dromos_exact_codes(codes) AS exact
+    FROM (SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'sex')
 ),
 typed AS (
     SELECT
@@ -18,7 +19,7 @@ typed AS (
         s.birth_date AS birth_date_raw,
         dromos_date(s.birth_date, $date_formats) AS birth_date,
         s.sex AS sex_raw,
-        coalesce(sc.codes[lower(dromos_text(s.sex))], CASE WHEN dromos_text(s.sex) IS NULL THEN 'U' END) AS sex,
+        coalesce(dromos_code(s.sex, sc.codes, sc.exact), CASE WHEN dromos_text(s.sex) IS NULL THEN 'U' END) AS sex,
         dromos_text(s.site) AS site,
         s.death_date AS death_date_raw,
         dromos_date(s.death_date, $date_formats) AS death_date,

@@ -5,7 +5,8 @@
 -- exists). No hash join between src and the output: rows stay in file order.
 CREATE OR REPLACE TEMP TABLE stage_typed AS
 WITH kind_codes AS (
-    SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'kind'
+    SELECT codes, dromos_exact_codes(codes) AS exact
+    FROM (SELECT map_from_entries(list((source_value, code))) AS codes FROM code_map WHERE field = 'kind')
 ),
 typed AS (
     SELECT
@@ -16,7 +17,7 @@ typed AS (
         s.t_ms AS t_ms_raw,
         dromos_number(s.t_ms) AS t_ms,
         s.kind AS kind_raw,
-        kc.codes[lower(dromos_text(s.kind))] AS kind
+        dromos_code(s.kind, kc.codes, kc.exact) AS kind
     FROM src AS s
     CROSS JOIN kind_codes AS kc
 ),

@@ -1,8 +1,9 @@
 """The staging macros' fast paths give exactly what their plain definitions give.
 
-``dromos_text`` and ``dromos_split`` skip DuckDB's ``trim`` for tidy text; these tests compare
-them with the plain definitions (trim every value, split and trim every item) over every
-Unicode code point at either end of a value and over generated separated lists.
+``dromos_text`` and ``dromos_split`` skip DuckDB's ``trim`` for tidy text, and ``dromos_code`` the
+map lookup for a value already canonical; these tests compare them with the plain definitions
+(trim every value, split and trim every item, look every value up) over every Unicode code
+point at either end of a value, over generated separated lists and over generated code maps.
 """
 
 from __future__ import annotations
@@ -73,3 +74,29 @@ def test_split_equals_plain_split(pieces, sep):
 def test_split_of_empty_and_null():
     con = _session()
     assert con.execute("SELECT dromos_split('', ';'), dromos_split(NULL, ';')").fetchone() == ([], [])
+
+
+_CODE_MAPS = [
+    {"machine": "machine", "confirmed": "confirmed", "overread": "confirmed"},
+    {"p": "P", "qrs": "QRS", "r": "QRS"},
+    {"m": "M", "male": "M", "1": "M", "f": "F", "2": "F"},
+    {"m": "F", "male": "M"},  # a source value equal to another code, mapped elsewhere
+    {},
+]
+
+
+@settings(max_examples=300, deadline=None)
+@given(codes=st.sampled_from(_CODE_MAPS),
+       raw=st.one_of(st.none(), st.sampled_from(["machine", "Machine", " machine ", "confirmed", "overread",
+                                                 "P", "p", "QRS", " QRS", "R", "M", "m", "F", "male", "1",
+                                                 "2", "", " ", "\u00a0M", "x"]), st.text(max_size=4)))
+def test_code_equals_the_plain_map_lookup(codes, raw):
+    con = _session()
+    got, plain = con.execute(
+        """
+        WITH m AS (SELECT CAST(MAP(CAST($k AS VARCHAR[]), CAST($v AS VARCHAR[])) AS MAP(VARCHAR, VARCHAR)) AS codes)
+        SELECT dromos_code($raw, codes, dromos_exact_codes(codes)), codes[lower(dromos_text($raw))] FROM m
+        """,
+        {"k": list(codes), "v": list(codes.values()), "raw": raw},
+    ).fetchone()
+    assert got == plain
