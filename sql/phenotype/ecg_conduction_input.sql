@@ -11,14 +11,19 @@ WITH
 param AS (
     SELECT * FROM rule_param WHERE rule_set_id = $rule_set_id
 ),
+confirmed_keys AS (
+    SELECT DISTINCT ecg_key FROM ecg WHERE read_kind = 'confirmed'
+),
+-- The read ecg_read picks, without its window: (ecg_key, read_kind) is unique (the loader
+-- enforces it), so a key's confirmed read, or its machine read when it has none. The view's
+-- window groups every read of the registry by key; this filter looks up the few confirmed keys.
 chosen AS (
     SELECT
         ecg_key, person_key, acquired_at, read_kind, ventricular_rate, atrial_rate, pr_ms,
         qrs_ms, qrs_axis, hash(statements, statement_codes) AS profile_hash
-    FROM ecg_read
-),
-confirmed_keys AS (
-    SELECT DISTINCT ecg_key FROM ecg WHERE read_kind = 'confirmed'
+    FROM ecg AS g
+    WHERE read_kind = 'confirmed'
+       OR NOT EXISTS (SELECT 1 FROM confirmed_keys AS k WHERE k.ecg_key = g.ecg_key)
 ),
 machine_under_confirmed AS (
     SELECT
