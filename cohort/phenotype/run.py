@@ -213,11 +213,16 @@ def classification_rows(lexicon: Lexicon, kind: str, texts: list[str], rule_set_
     return rows
 
 
+def _prepare_statement_combos(con) -> None:
+    """Temp table phen_statement_combo: the distinct statement lists of ``ecg`` (grouped once)."""
+    con.execute("CREATE OR REPLACE TEMP TABLE phen_statement_combo AS "
+                + read_sql("phenotype/statement_combo.sql"))
+
+
 def _distinct_items(con, column: str) -> list[str]:
-    """Distinct elements of a list column of ``ecg`` (distinct lists first: they repeat)."""
+    """Distinct elements of a list column of ``ecg``, from its distinct lists (they repeat)."""
     sql = (
-        f"SELECT DISTINCT t FROM (SELECT unnest(l) AS t FROM "
-        f"(SELECT DISTINCT {column} AS l FROM ecg WHERE {column} IS NOT NULL)) "
+        f"SELECT DISTINCT t FROM (SELECT unnest({column}) AS t FROM phen_statement_combo) "
         "WHERE t IS NOT NULL ORDER BY t"
     )
     return [r[0] for r in con.execute(sql).fetchall()]
@@ -399,11 +404,13 @@ def run_phenotype(
         _report(progress, "rules", 1)
         _report(progress, "beats", 2)
         t0 = time.perf_counter()
+        _prepare_statement_combos(con)
         counts = _classify_statements(con, rs)
         timings["statements"] = time.perf_counter() - t0
         _report(progress, "statements", 3)
         t0 = time.perf_counter()
         _write(con, "statement_profile", read_sql("phenotype/statement_profile.sql"), params, notes)
+        con.execute("DROP TABLE phen_statement_combo")
         timings["statement_profile"] = time.perf_counter() - t0
         _report(progress, "statement_profile", 4)
         last = _build_conduction(con, params, timings, progress, 5, notes)

@@ -1,6 +1,7 @@
 -- statement_profile: the statement-level findings of each distinct statement combination.
 -- Grain: one row per distinct (statements, statement_codes) pair over all reads in `ecg`
--- (machine and confirmed), for rule set $rule_set_id. Reads join back by profile_hash.
+-- (machine and confirmed; temp table phen_statement_combo, see statement_combo.sql), for rule
+-- set $rule_set_id. Reads join back by profile_hash.
 -- Machine statements repeat heavily, so the findings are worked out once per combination here
 -- and not once per ECG. Inputs: statement_class (the Python lexicon's verdict on each distinct
 -- statement and code), rule_finding (axis, category and rank of each finding in this rule set),
@@ -11,9 +12,7 @@ param AS (
     SELECT * FROM rule_param WHERE rule_set_id = $rule_set_id
 ),
 combos AS (
-    SELECT statements, statement_codes, count(*) AS n_reads
-    FROM ecg
-    GROUP BY statements, statement_codes
+    SELECT statements, statement_codes, n_reads FROM phen_statement_combo  -- statement_combo.sql
 ),
 keyed AS (
     SELECT hash(statements, statement_codes) AS profile_hash, statements, statement_codes, n_reads
