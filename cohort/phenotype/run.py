@@ -15,6 +15,7 @@ from collections.abc import Callable
 from typing import Any
 
 import duckdb
+import pandas as pd
 import pyarrow as pa
 
 from cohort import __version__
@@ -450,20 +451,28 @@ def _log_run(con, rs: RuleSet, seconds: float, notes: list[str]) -> None:
     _write_rows(con, RUN_LOG, [row], rs.id, notes=notes)
 
 
-# Counts per signature first (integer key, fast), then per category over the few signatures.
-_PER_SIGNATURE = (
+# ECGs per signature first (integer key, one scan of the per-ECG table), then per category
+# combination and flag over the few signatures.
+_CATEGORY_GROUPS = (
     "WITH n AS (SELECT signature, read_kind, count(*) AS n FROM ecg_conduction_core "
     "WHERE rule_set_id = $rule_set_id GROUP BY signature, read_kind) "
-    "SELECT {select} FROM n JOIN conduction_signature AS s "
-    "ON s.rule_set_id = $rule_set_id AND s.signature = n.signature {group}"
+    "SELECT n.read_kind, s.rhythm_class, s.av_category, s.ventricular_conduction, "
+    "sum(n.n) AS n, {flags}, "
+    "coalesce(sum(n.n) FILTER (WHERE s.n_conflicts > 0), 0) AS n_with_conflict "
+    "FROM n JOIN conduction_signature AS s "
+    "ON s.rule_set_id = $rule_set_id AND s.signature = n.signature GROUP BY ALL"
 )
 
 
-def _counts(con, column: str, rule_set_id: str, codes) -> dict[str, int]:
-    col = "n.read_kind" if column == "read_kind" else f"s.{column}"
-    sql = _PER_SIGNATURE.format(select=f"{col}, sum(n.n)", group="GROUP BY 1")
-    rows = dict(con.execute(sql, {"rule_set_id": rule_set_id}).fetchall())
-    return {code: int(rows.get(code, 0)) for code in codes}
+def _category_groups(con, rule_set_id: str) -> pd.DataFrame:
+    """ECG and flag counts per (read kind, rhythm, AV, ventricular category): a small frame."""
+    flags = ", ".join(f"coalesce(sum(n.n) FILTER (WHERE s.{c}), 0) AS {c}" for c in FLAG_COLUMNS)
+    return con.execute(_CATEGORY_GROUPS.format(flags=flags), {"rule_set_id": rule_set_id}).df()
+
+
+def _counts(groups: pd.DataFrame, column: str, codes) -> dict[str, int]:
+    totals = groups.groupby(column)["n"].sum()
+    return {code: int(totals.get(code, 0)) for code in codes}
 
 
 def rule_set_of_run(con, rules: str) -> RuleSet:
@@ -512,12 +521,7 @@ def _require_run(con, rule_set_id: str) -> None:
 def summarize(con, rule_set_id: str, top: int = 10) -> dict[str, Any]:
     """Category counts, flag counts and top unrecognised statements of a finished run."""
     _require_run(con, rule_set_id)
-    select = ", ".join(
-        f"coalesce(sum(n.n) FILTER (WHERE s.{c}), 0)" for c in FLAG_COLUMNS
-    ) + ", coalesce(sum(n.n) FILTER (WHERE s.n_conflicts > 0), 0), coalesce(sum(n.n), 0)"
-    flags = con.execute(
-        _PER_SIGNATURE.format(select=select, group=""), {"rule_set_id": rule_set_id}
-    ).fetchall()[0]
+    groups = _category_groups(con, rule_set_id)
     n_person = con.execute(
         "SELECT count(*) FROM person_conduction WHERE rule_set_id = ?", [rule_set_id]
     ).fetchall()[0][0]
@@ -527,16 +531,14 @@ def summarize(con, rule_set_id: str, top: int = 10) -> dict[str, Any]:
     ).fetchall()[0]
     return {
         "rule_set_id": rule_set_id,
-        "n_ecg": int(flags[-1]),
+        "n_ecg": int(groups["n"].sum()),
         "n_person": int(n_person),
-        "read_kind": _counts(con, "read_kind", rule_set_id, ("machine", "confirmed")),
-        "rhythm_class": _counts(con, "rhythm_class", rule_set_id, RHYTHM_CLASSES),
-        "av_category": _counts(con, "av_category", rule_set_id, AV_CATEGORIES),
-        "ventricular_conduction": _counts(
-            con, "ventricular_conduction", rule_set_id, VENTRICULAR_CONDUCTION
-        ),
-        "flags": {c: int(v) for c, v in zip(FLAG_COLUMNS, flags[:-2], strict=True)},
-        "n_with_conflict": int(flags[-2]),
+        "read_kind": _counts(groups, "read_kind", ("machine", "confirmed")),
+        "rhythm_class": _counts(groups, "rhythm_class", RHYTHM_CLASSES),
+        "av_category": _counts(groups, "av_category", AV_CATEGORIES),
+        "ventricular_conduction": _counts(groups, "ventricular_conduction", VENTRICULAR_CONDUCTION),
+        "flags": {c: int(groups[c].sum()) for c in FLAG_COLUMNS},
+        "n_with_conflict": int(groups["n_with_conflict"].sum()),
         "n_unrecognised_statements": int(unrec[0]),
         "n_unrecognised_occurrences": int(unrec[1]),
         "top_unrecognised": list_unrecognised(con, rule_set_id, top),
