@@ -15,7 +15,6 @@ from collections.abc import Callable
 from typing import Any
 
 import duckdb
-import pandas as pd
 import pyarrow as pa
 
 from cohort import __version__
@@ -464,15 +463,23 @@ _CATEGORY_GROUPS = (
 )
 
 
-def _category_groups(con, rule_set_id: str) -> pd.DataFrame:
-    """ECG and flag counts per (read kind, rhythm, AV, ventricular category): a small frame."""
+def _category_groups(con, rule_set_id: str) -> list[dict[str, Any]]:
+    """ECG and flag counts per (read kind, rhythm, AV, ventricular category): a few rows."""
     flags = ", ".join(f"coalesce(sum(n.n) FILTER (WHERE s.{c}), 0) AS {c}" for c in FLAG_COLUMNS)
-    return con.execute(_CATEGORY_GROUPS.format(flags=flags), {"rule_set_id": rule_set_id}).df()
+    result = con.execute(_CATEGORY_GROUPS.format(flags=flags), {"rule_set_id": rule_set_id})
+    names = [d[0] for d in result.description]
+    return [dict(zip(names, row, strict=True)) for row in result.fetchall()]
 
 
-def _counts(groups: pd.DataFrame, column: str, codes) -> dict[str, int]:
-    totals = groups.groupby(column)["n"].sum()
-    return {code: int(totals.get(code, 0)) for code in codes}
+def _total(groups: list[dict[str, Any]], column: str) -> int:
+    return int(sum(g[column] for g in groups))
+
+
+def _counts(groups: list[dict[str, Any]], column: str, codes) -> dict[str, int]:
+    totals: dict[str, int] = {}
+    for g in groups:
+        totals[g[column]] = totals.get(g[column], 0) + int(g["n"])
+    return {code: totals.get(code, 0) for code in codes}
 
 
 def rule_set_of_run(con, rules: str) -> RuleSet:
@@ -531,14 +538,14 @@ def summarize(con, rule_set_id: str, top: int = 10) -> dict[str, Any]:
     ).fetchall()[0]
     return {
         "rule_set_id": rule_set_id,
-        "n_ecg": int(groups["n"].sum()),
+        "n_ecg": _total(groups, "n"),
         "n_person": int(n_person),
         "read_kind": _counts(groups, "read_kind", ("machine", "confirmed")),
         "rhythm_class": _counts(groups, "rhythm_class", RHYTHM_CLASSES),
         "av_category": _counts(groups, "av_category", AV_CATEGORIES),
         "ventricular_conduction": _counts(groups, "ventricular_conduction", VENTRICULAR_CONDUCTION),
-        "flags": {c: int(groups[c].sum()) for c in FLAG_COLUMNS},
-        "n_with_conflict": int(groups["n_with_conflict"].sum()),
+        "flags": {c: _total(groups, c) for c in FLAG_COLUMNS},
+        "n_with_conflict": _total(groups, "n_with_conflict"),
         "n_unrecognised_statements": int(unrec[0]),
         "n_unrecognised_occurrences": int(unrec[1]),
         "top_unrecognised": list_unrecognised(con, rule_set_id, top),
