@@ -20,13 +20,14 @@ import hashlib
 import multiprocessing
 import os
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 
 from cohort.phenotype.beats import BeatRules, classify_sorted, resolve_rules
-from cohort.phenotype.beats_vector import COLUMNS, StripRuns, vectorized_rows
+from cohort.phenotype.beats_vector import COLUMNS, StripRuns, may_settle, vectorized_rows
 from cohort.sqlfiles import read_sql
 
 ProgressFn = Callable[[int, int], None]
@@ -35,8 +36,8 @@ ProgressFn = Callable[[int, int], None]
 _MIN_PARALLEL = 2_000
 # More workers than this gain little: the vectorized paths, reading and writing stay serial.
 _MAX_AUTO_WORKERS = 8
-# The strips and rules a forked worker classifies, inherited from the parent (not pickled).
-_FORKED_WORK: tuple[list, BeatRules] | None = None
+# The strips, onsets and rules forked workers classify, inherited from the parent (not pickled).
+_FORKED_WORK: tuple[StripRuns, _FiniteOnsets, BeatRules] | None = None
 
 
 
@@ -154,54 +155,73 @@ def _arrow(relation) -> pa.Table:
 def classify_strips(strips: StripRuns, r: BeatRules, *, progress: ProgressFn | None = None,
                     workers: int | None = None) -> dict:
     """Column lists of beat_pattern (without keys) for all strips (workers: see
-    :func:`classify_registry`)."""
+    :func:`classify_registry`).
+
+    The strips no vectorized path can settle (by shape, ``may_settle``) go to the per-strip
+    classifier first, so worker processes work on them while the vectorized passes run here;
+    the candidates those passes leave follow.
+    """
     n = len(strips.keys)
     cols: dict[str, list] = {c: [None] * n for c in COLUMNS}
-    fast = vectorized_rows(strips, r)
-    for c, values in fast.items():
-        if c != "index":
-            for i, v in zip(fast["index"], values, strict=True):
-                cols[c][i] = v
-    done = np.zeros(n, dtype=bool)
-    done[fast["index"]] = True
-    slow = np.flatnonzero(~done)
-    items = _slow_items(strips, slow)
-    n_fast = len(fast["index"])
     workers = default_workers() if workers is None else workers
-    if workers > 1 and len(items) >= _MIN_PARALLEL:
-        rows = _rows_in_workers(items, r, workers, progress, n_fast, n)
-    else:
-        rows = []
-        step = max(1, len(items) // 100)
-        for count, item in enumerate(items, start=1):
-            rows.append(_row(item, r))
-            if progress and count % step == 0:
-                progress(n_fast + count, n)
-    for i, row in zip(slow.tolist(), rows, strict=True):
-        for c, v in zip(COLUMNS, row, strict=True):
-            cols[c][i] = v
+    with _SlowStrips(strips, r, workers) as slow:
+        settle = may_settle(strips, r)
+        slow.submit(np.flatnonzero(~settle))
+        fast = vectorized_rows(strips, r)
+        for c, values in fast.items():
+            if c != "index":
+                for i, v in zip(fast["index"], values, strict=True):
+                    cols[c][i] = v
+        left = settle.copy()
+        left[fast["index"]] = False
+        slow.submit(np.flatnonzero(left))
+        n_done = len(fast["index"])
+        for index, rows in slow.results():
+            for i, row in zip(index.tolist(), rows, strict=True):
+                for c, v in zip(COLUMNS, row, strict=True):
+                    cols[c][i] = v
+            n_done += len(index)
+            if progress:
+                progress(n_done, n)
     if progress:
         progress(n, n)
     return cols
 
 
-def _slow_items(strips: StripRuns, slow: np.ndarray) -> list[tuple[list, list, int]]:
-    """(P onsets, QRS onsets, non-finite onsets dropped) of the given strips, as Python lists.
+@dataclass
+class _FiniteOnsets:
+    """The finite onsets of all strips in event order, and how many precede each event.
 
     Non-finite onsets (NaN sorts last in DuckDB, -inf first) are dropped for all strips at
-    once: the runs stay contiguous in the finite array, at positions counted by ``kept``.
+    once: the runs stay contiguous in ``t``, at positions counted by ``kept``.
     """
-    if len(slow) == 0:
+
+    t: np.ndarray
+    kept: np.ndarray
+
+    @classmethod
+    def of(cls, strips: StripRuns) -> _FiniteOnsets:
+        finite = np.isfinite(strips.t)
+        return cls(strips.t[finite], np.concatenate(([0], np.cumsum(finite))))
+
+
+def _slow_items(strips: StripRuns, onsets: _FiniteOnsets, index: np.ndarray
+                ) -> list[tuple[list, list, int]]:
+    """(P onsets, QRS onsets, non-finite onsets dropped) of the given strips (ascending strip
+    numbers), as Python lists."""
+    if len(index) == 0:
         return []
-    finite = np.isfinite(strips.t)
-    kept = np.concatenate(([0], np.cumsum(finite)))
-    t = strips.t[finite].tolist()
-    ps, pe = kept[strips.p_start[slow]], kept[strips.p_end[slow]]
-    qs, qe = kept[strips.q_start[slow]], kept[strips.q_end[slow]]
-    raw = (strips.p_end[slow] - strips.p_start[slow]) + (strips.q_end[slow] - strips.q_start[slow])
+    kept = onsets.kept
+    ps, pe = kept[strips.p_start[index]], kept[strips.p_end[index]]
+    qs, qe = kept[strips.q_start[index]], kept[strips.q_end[index]]
+    raw = (strips.p_end[index] - strips.p_start[index]) + (strips.q_end[index] - strips.q_start[index])
     dropped = raw - (pe - ps) - (qe - qs)
-    return [(t[a:b], t[c:d], n) for a, b, c, d, n in zip(
-        ps.tolist(), pe.tolist(), qs.tolist(), qe.tolist(), dropped.tolist(), strict=True)]
+    # one list of the events the strips span (QRS runs come first in a strip)
+    lo, hi = int(qs[0]), int(pe[-1])
+    t = onsets.t[lo:hi].tolist()
+    return [(t[a:b], t[c:d], k) for a, b, c, d, k in zip(
+        (ps - lo).tolist(), (pe - lo).tolist(), (qs - lo).tolist(), (qe - lo).tolist(),
+        dropped.tolist(), strict=True)]
 
 
 def default_workers() -> int:
@@ -214,51 +234,87 @@ def default_workers() -> int:
     return max(1, min(_MAX_AUTO_WORKERS, cores or 1))
 
 
-def _rows_in_workers(items: list, r: BeatRules, workers: int, progress: ProgressFn | None,
-                     n_fast: int, n: int) -> list[tuple]:
-    """Classify in a pool of worker processes, in order.
+class _SlowStrips:
+    """The strips for the per-strip classifier, classified in worker processes or in-process.
 
-    Where the platform can fork, workers inherit the strips (nothing is pickled but the rows
-    coming back) and run only the pure-Python classifier: they never touch DuckDB, and a forked
-    worker leaves through ``os._exit``, so the parent's database is not closed or written by
-    it. Elsewhere the strips are sent to spawned processes.
+    ``submit`` hands over strip numbers; once ``_MIN_PARALLEL`` strips are waiting (and more
+    than one worker is allowed) a pool starts and takes them in chunks while the caller goes
+    on; ``results`` yields (strip numbers, rows) per chunk in submission order. Where the
+    platform can fork, workers inherit the strips (nothing is pickled but strip numbers and the
+    rows coming back) and run only the pure-Python classifier: they never touch DuckDB, and a
+    forked worker leaves through ``os._exit``, so the parent's database is not closed or
+    written by it. Elsewhere each chunk's onsets are sent to spawned processes.
     """
-    size = max(1, -(-len(items) // (workers * 8)))
-    bounds = [(i, min(i + size, len(items))) for i in range(0, len(items), size)]
-    if "fork" not in multiprocessing.get_all_start_methods():
-        return _collect(multiprocessing.get_context("spawn"), _rows_of_chunk,
-                        [(items[a:b], r) for a, b in bounds], workers, progress, n_fast, n)
-    global _FORKED_WORK
-    _FORKED_WORK = (items, r)
-    try:
-        return _collect(multiprocessing.get_context("fork"), _rows_of_range, bounds, workers,
-                        progress, n_fast, n)
-    finally:
+
+    def __init__(self, strips: StripRuns, r: BeatRules, workers: int) -> None:
+        self.strips, self.r, self.workers = strips, r, workers
+        self.onsets = _FiniteOnsets.of(strips)
+        self.waiting: list[np.ndarray] = []
+        self.chunks: list[tuple[np.ndarray, object]] = []  # (strip numbers, AsyncResult)
+        self.pool = None
+        self.fork = "fork" in multiprocessing.get_all_start_methods()
+
+    def __enter__(self) -> _SlowStrips:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        global _FORKED_WORK
+        if self.pool is not None:
+            if exc[0] is None:
+                self.pool.close()
+            else:
+                self.pool.terminate()
+            self.pool.join()
         _FORKED_WORK = None
 
+    def submit(self, index: np.ndarray) -> None:
+        if len(index):
+            self.waiting.append(index)
+        if self.pool is None and self.workers > 1 and sum(map(len, self.waiting)) >= _MIN_PARALLEL:
+            self._start()
+        if self.pool is not None:
+            for part in self.waiting:
+                self._send(part)
+            self.waiting = []
 
-def _collect(ctx, work: Callable, tasks: list, workers: int, progress: ProgressFn | None,
-             n_fast: int, n: int) -> list[tuple]:
-    """Rows of every task from a pool of ``workers`` processes, in task order."""
-    rows: list[tuple] = []
-    with ctx.Pool(workers) as pool:
-        for chunk_rows in pool.imap(work, tasks):
-            rows += chunk_rows
-            if progress:
-                progress(n_fast + len(rows), n)
-    return rows
+    def results(self):
+        """(strip numbers, rows) per chunk, in submission order; waits for the workers."""
+        for index, pending in self.chunks:
+            yield index, pending.get()
+        for index in self.waiting:  # in-process
+            step = max(1, len(index) // 100)
+            for a in range(0, len(index), step):
+                part = index[a:a + step]
+                yield part, [_row(item, self.r)
+                             for item in _slow_items(self.strips, self.onsets, part)]
+
+    def _start(self) -> None:
+        global _FORKED_WORK
+        if self.fork:
+            _FORKED_WORK = (self.strips, self.onsets, self.r)
+        method = "fork" if self.fork else "spawn"
+        self.pool = multiprocessing.get_context(method).Pool(self.workers)
+
+    def _send(self, index: np.ndarray) -> None:
+        size = max(1, -(-len(index) // (self.workers * 8)))
+        for a in range(0, len(index), size):
+            part = index[a:a + size]
+            if self.fork:
+                pending = self.pool.apply_async(_rows_of_strips, (part,))
+            else:
+                items = _slow_items(self.strips, self.onsets, part)
+                pending = self.pool.apply_async(_rows_of_items, (items, self.r))
+            self.chunks.append((part, pending))
 
 
-def _rows_of_range(bounds: tuple[int, int]) -> list[tuple]:
-    """Rows of items[a:b] of the work a forked worker inherited."""
-    items, r = _FORKED_WORK
-    a, b = bounds
-    return [_row(item, r) for item in items[a:b]]
+def _rows_of_strips(index: np.ndarray) -> list[tuple]:
+    """Rows of the given strips of the work a forked worker inherited."""
+    strips, onsets, r = _FORKED_WORK
+    return [_row(item, r) for item in _slow_items(strips, onsets, index)]
 
 
-def _rows_of_chunk(args: tuple[list, BeatRules]) -> list[tuple]:
-    chunk, r = args
-    return [_row(item, r) for item in chunk]
+def _rows_of_items(items: list, r: BeatRules) -> list[tuple]:
+    return [_row(item, r) for item in items]
 
 
 def _row(item: tuple[list, list, int], r: BeatRules) -> tuple:

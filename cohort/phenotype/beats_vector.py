@@ -104,6 +104,19 @@ def vectorized_rows(strips: StripRuns, r: BeatRules) -> dict:
     return out
 
 
+def may_settle(strips: StripRuns, r: BeatRules) -> np.ndarray:
+    """Strips whose shape lets a vectorized path settle them (the others are never settled
+    here): as many core QRS as core P (plain 1:1) or one more (one missed P), and enough beats.
+    """
+    n_q, n_p, lead, trail = _edges(strips)
+    extra_qrs = (n_q - lead) - (n_p - trail)
+    return ((extra_qrs == 0) | (extra_qrs == 1)) & _enough_beats(n_p - trail, r)
+
+
+def _enough_beats(core: np.ndarray, r: BeatRules) -> np.ndarray:
+    return core >= max(r.min_p, r.min_qrs, 3)
+
+
 # --------------------------------------------------------------------------------------------
 # Candidates
 # --------------------------------------------------------------------------------------------
@@ -140,7 +153,7 @@ def _plain_candidates(strips: StripRuns, r: BeatRules) -> tuple[_OneToOne, np.nd
     """Strips with as many core P as core QRS, and whether their P-P cadence qualifies."""
     n_q, n_p, lead, trail = _edges(strips)
     core = n_p - trail
-    cand = np.flatnonzero((n_q - lead == core) & (core >= max(r.min_p, r.min_qrs, 3)))
+    cand = np.flatnonzero((n_q - lead == core) & _enough_beats(core, r))
     if len(cand) == 0:
         return None
     p, _ = _runs(strips, cand, strips.p_start[cand], core[cand])
@@ -162,7 +175,7 @@ def _missed_p_candidates(strips: StripRuns, r: BeatRules) -> tuple[_OneToOne, np
     """
     n_q, n_p, lead, trail = _edges(strips)
     core = n_p - trail
-    cand = np.flatnonzero((n_q - lead == core + 1) & (core >= max(r.min_p, r.min_qrs, 3)))
+    cand = np.flatnonzero((n_q - lead == core + 1) & _enough_beats(core, r))
     if len(cand) == 0:
         return None
     detected, group = _runs(strips, cand, strips.p_start[cand], n_p[cand])

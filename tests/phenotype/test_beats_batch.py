@@ -216,3 +216,46 @@ def test_a_second_phenotype_run_reuses_the_beat_patterns(strips):
     assert first["av_category"] == again["av_category"]
     forced = run_phenotype(con, "default-v1", rebuild=True)
     assert any("wrote" in note for note in forced["notes"])
+
+
+def test_vectorized_paths_settle_only_strips_of_the_shape_they_take(strips):
+    # classify_strips sends the strips may_settle rejects to the per-strip classifier before
+    # the vectorized passes run: those passes must never settle one of them
+    from cohort.phenotype.beats_vector import may_settle
+
+    con = _registry(strips)
+    runs, r = _read_strips(con), load_rules()
+    shape = may_settle(runs, r)
+    settled = vectorized_rows(runs, r)["index"]
+    assert len(settled) and shape[settled].all()
+    assert (~shape).any()
+
+
+@pytest.mark.parametrize("when", ["first batch", "second batch", "never"])
+def test_rows_do_not_depend_on_when_the_worker_pool_starts(strips, monkeypatch, when):
+    import multiprocessing
+
+    import cohort.phenotype.beats_batch as batch
+    from cohort.phenotype.beats_vector import may_settle
+
+    if "fork" not in multiprocessing.get_all_start_methods():
+        pytest.skip("no fork start method on this platform")
+    con = _registry(strips)
+    classify_registry(con, workers=1)
+    serial = con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall()
+    runs, r = _read_strips(con), load_rules()
+    shape = may_settle(runs, r)
+    left = shape.copy()
+    left[vectorized_rows(runs, r)["index"]] = False
+    n_first, n_second = int((~shape).sum()), int(left.sum())
+    assert n_first >= 1 and n_second >= 1  # both batches are exercised
+    threshold = {"first batch": n_first, "second batch": n_first + n_second,
+                 "never": n_first + n_second + 1}[when]
+    monkeypatch.setattr(batch, "_MIN_PARALLEL", threshold)
+    started = []
+    real_start = batch._SlowStrips._start
+    monkeypatch.setattr(batch._SlowStrips, "_start",
+                        lambda self: (started.append(True), real_start(self)))
+    classify_registry(con, workers=2)
+    assert bool(started) == (when != "never")
+    assert con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall() == serial
