@@ -20,6 +20,7 @@ import hashlib
 import multiprocessing
 import os
 from collections.abc import Callable
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -59,37 +60,69 @@ def classify_registry(con, *, rules: BeatRules | str | None = None,
         on it.
     """
     r = resolve_rules(rules)
-    strips = _read_strips(con)
-    columns = classify_strips(strips, r, progress=progress, workers=workers)
-    _write(con, strips.keys, columns, r)
-    return len(strips.keys)
+    with _strip_digests(con):
+        return _classify(con, r, progress, workers, changed_only=False)[0]
 
 
 def refresh_registry(con, *, rules: BeatRules | str | None = None,
-                     progress: ProgressFn | None = None, workers: int | None = None) -> tuple[int, bool]:
-    """``classify_registry`` unless ``beat_pattern`` is up to date; (rows, reused).
+                     progress: ProgressFn | None = None, workers: int | None = None
+                     ) -> tuple[int, int]:
+    """Bring ``beat_pattern`` up to date with ``wave_event``; (rows, strips classified now).
 
-    Up to date means computed (``beat_run``) from the same wave events (fingerprint), the same
-    thresholds and the same classifier source, so re-running the phenotype (a second rule set,
-    a sensitivity analysis) does not classify every strip again.
+    Nothing is classified while beat_run says the rows were computed from the same wave events
+    (fingerprint), thresholds and classifier source, so re-running the phenotype (a second
+    rule set, a sensitivity analysis) is cheap. When only wave events changed (a new load),
+    only new strips and strips whose events changed (``beat_strip`` digests) are classified;
+    rows of strips no longer in wave_event are dropped. Other changes classify every strip.
     """
     r = resolve_rules(rules)
     n = _up_to_date_rows(con, r)
     if n is not None:
-        return n, True
-    return classify_registry(con, rules=r, progress=progress, workers=workers), False
+        return n, 0
+    if not _same_classification(con, r):
+        n = classify_registry(con, rules=r, progress=progress, workers=workers)
+        return n, n
+    with _strip_digests(con):
+        return _classify(con, r, progress, workers, changed_only=True)
+
+
+@contextmanager
+def _strip_digests(con):
+    """Temporary table phen_beat_digest: the digest of each strip of wave_event now."""
+    con.execute("CREATE OR REPLACE TEMP TABLE phen_beat_digest AS "
+                + read_sql("phenotype/beat_strip_digest.sql"))
+    try:
+        yield
+    finally:
+        con.execute("DROP TABLE IF EXISTS phen_beat_digest")
+
+
+def _classify(con, r: BeatRules, progress: ProgressFn | None, workers: int | None, *,
+              changed_only: bool) -> tuple[int, int]:
+    """Classify every strip, or only new and changed ones (keeping the stored rows of the
+    others), and write beat_pattern; (rows, strips classified)."""
+    strips = _read_strips(con, "phenotype/beat_strips_changed.sql" if changed_only
+                          else "phenotype/beat_strips.sql")
+    columns = classify_strips(strips, r, progress=progress, workers=workers)
+    rows = _write(con, strips.keys, columns, r, keep_stored=changed_only)
+    return rows, len(strips.keys)
 
 
 def _run_row(con, r: BeatRules, n_strips: int) -> dict:
     """The beat_run row describing beat patterns computed now from ``wave_event``."""
     waves, fingerprint = con.execute(read_sql("phenotype/wave_fingerprint.sql")).fetchone()
-    rules_text = repr(sorted(dataclasses.asdict(r).items()))
     return {
         "rules_id": r.rules_id,
-        "rules_fingerprint": hashlib.sha256(rules_text.encode("utf-8")).hexdigest(),
+        "rules_fingerprint": _rules_fingerprint(r),
         "classifier_fingerprint": _classifier_fingerprint(),
         "wave_events": waves, "wave_fingerprint": fingerprint, "n_strips": n_strips,
     }
+
+
+def _rules_fingerprint(r: BeatRules) -> str:
+    """sha256 of every beat threshold (a changed value under the same rule id invalidates)."""
+    rules_text = repr(sorted(dataclasses.asdict(r).items()))
+    return hashlib.sha256(rules_text.encode("utf-8")).hexdigest()
 
 
 def _classifier_fingerprint() -> str:
@@ -102,33 +135,48 @@ def _classifier_fingerprint() -> str:
     return digest.hexdigest()
 
 
-def _up_to_date_rows(con, r: BeatRules) -> int | None:
-    """Rows of beat_pattern when beat_run says they were computed from what is there now."""
+def _stored_run(con, *tables: str) -> dict | None:
+    """The beat_run row, when beat_pattern, beat_run and ``tables`` exist (else None)."""
+    wanted = {"beat_pattern", "beat_run", *tables}
     present = {row[0] for row in con.execute(
         "SELECT table_name FROM information_schema.tables WHERE table_schema = current_schema() "
-        "AND table_name IN ('beat_pattern', 'beat_run')").fetchall()}
-    if present != {"beat_pattern", "beat_run"}:
+        "AND table_name IN (SELECT unnest($names))", {"names": sorted(wanted)}).fetchall()}
+    if present != wanted:
         return None
-    stored = con.execute(
-        "SELECT rules_id, rules_fingerprint, classifier_fingerprint, wave_events, wave_fingerprint, "
-        "n_strips FROM beat_run").fetchall()
+    cur = con.execute("SELECT * FROM beat_run")
+    rows = cur.fetchall()
+    names = [d[0] for d in cur.description]
+    return dict(zip(names, rows[0], strict=True)) if len(rows) == 1 else None
+
+
+def _up_to_date_rows(con, r: BeatRules) -> int | None:
+    """Rows of beat_pattern when beat_run says they were computed from what is there now."""
+    stored = _stored_run(con)
+    if stored is None:
+        return None
     n = con.execute("SELECT count(*) FROM beat_pattern").fetchone()[0]
     now = _run_row(con, r, n)
-    keys = ("rules_id", "rules_fingerprint", "classifier_fingerprint", "wave_events",
-            "wave_fingerprint", "n_strips")
-    if len(stored) != 1 or tuple(stored[0]) != tuple(now[k] for k in keys):
-        return None
-    return n
+    return n if all(stored[k] == v for k, v in now.items()) else None
 
 
-def _read_strips(con) -> StripRuns:
+def _same_classification(con, r: BeatRules) -> bool:
+    """Whether the stored rows came from these beat rules and this classifier, with per-strip
+    digests (``beat_strip``) to tell which strips changed."""
+    stored = _stored_run(con, "beat_strip")
+    return stored is not None and (
+        stored["rules_id"], stored["rules_fingerprint"], stored["classifier_fingerprint"]
+    ) == (r.rules_id, _rules_fingerprint(r), _classifier_fingerprint())
+
+
+def _read_strips(con, strips_sql: str = "phenotype/beat_strips.sql") -> StripRuns:
     """Ordered events as numpy arrays with the QRS and P run boundaries of each strip.
 
-    The strips are numbered first (temporary table phen_beat_strip, one row per ecg_key), so
-    the events are sorted by integers and the keys are read once per strip, not per event.
+    The strips (every strip: ``beat_strips.sql``; or those ``strips_sql`` names) are numbered
+    first (temporary table phen_beat_strip, one row per ecg_key), so the events are sorted by
+    integers and the keys are read once per strip, not per event.
     """
     con.execute("CREATE OR REPLACE TEMP TABLE phen_beat_strip AS "
-                + read_sql("phenotype/beat_strips.sql"))
+                + read_sql(strips_sql))
     try:
         rows = con.execute("SELECT ecg_key FROM phen_beat_strip ORDER BY strip_no").fetchall()
         table = _arrow(con.sql(read_sql("phenotype/beat_events.sql")))
@@ -343,9 +391,10 @@ def _in_transaction(con) -> bool:
     return con.execute("SELECT txid_current()").fetchall()[0][0] == first
 
 
-def _write(con, keys: list[str], cols: dict, r: BeatRules) -> None:
-    """Recreate beat_pattern (and its beat_run row) and insert the rows, in one transaction
-    (the caller's, if open)."""
+def _write(con, keys: list[str], cols: dict, r: BeatRules, *, keep_stored: bool) -> int:
+    """Recreate beat_pattern with the new rows (and, when ``keep_stored``, the stored rows
+    still valid: ``beat_pattern_kept.sql``), beat_strip and the beat_run row, in one
+    transaction (the caller's, if open); rows of beat_pattern."""
     rules_id = r.rules_id
     table = pa.table({
         "ecg_key": pa.array(keys, pa.string()),
@@ -365,11 +414,20 @@ def _write(con, keys: list[str], cols: dict, r: BeatRules) -> None:
     if own:
         con.execute("BEGIN TRANSACTION")
     try:
+        if keep_stored:  # copied aside: beat_pattern is created anew below
+            con.execute("CREATE OR REPLACE TEMP TABLE phen_beat_kept AS "
+                        + read_sql("phenotype/beat_pattern_kept.sql"))
         con.execute(read_sql("phenotype/beat_pattern_table.sql"))
+        if keep_stored:
+            con.execute("INSERT INTO beat_pattern SELECT * FROM phen_beat_kept")
+            con.execute("DROP TABLE phen_beat_kept")
         con.register("_beat_pattern_rows", table)
         con.execute("INSERT INTO beat_pattern SELECT * FROM _beat_pattern_rows")
         con.unregister("_beat_pattern_rows")
-        run = _run_row(con, r, len(keys))
+        con.execute(read_sql("phenotype/beat_strip_table.sql"))
+        con.execute("INSERT INTO beat_strip SELECT ecg_key, digest FROM phen_beat_digest")
+        n_rows = con.execute("SELECT count(*) FROM beat_pattern").fetchone()[0]
+        run = _run_row(con, r, n_rows)
         con.execute(read_sql("phenotype/beat_run_table.sql"))
         con.execute(
             "INSERT INTO beat_run VALUES ($rules_id, $rules_fingerprint, $classifier_fingerprint, "
@@ -380,3 +438,4 @@ def _write(con, keys: list[str], cols: dict, r: BeatRules) -> None:
         if own:
             con.execute("ROLLBACK")
         raise
+    return n_rows

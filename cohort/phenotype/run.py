@@ -243,7 +243,7 @@ def _run_beats(con, enabled: bool, rebuild: bool = False) -> str:
     """Run the beat classifier (another module) when wave events exist; say what happened.
 
     Beat patterns still up to date (same wave events, beat rules and classifier) are reused
-    unless ``rebuild``.
+    unless ``rebuild``; after new wave events only new and changed strips are classified.
     """
     if not enabled:
         return "beat classifier skipped on request"
@@ -259,10 +259,13 @@ def _run_beats(con, enabled: bool, rebuild: bool = False) -> str:
         raise
     if rebuild:
         return f"beat classifier wrote {module.classify_registry(con)} beat_pattern rows"
-    n, reused = module.refresh_registry(con)
-    if reused:
-        return (f"beat patterns of {n} strips reused: wave events, beat rules and classifier "
-                "unchanged since they were computed")
+    n, classified = module.refresh_registry(con)
+    if classified == 0:
+        return (f"beat patterns of {n} strips reused: no new or changed strips, beat rules "
+                "and classifier unchanged since they were computed")
+    if classified < n:
+        return (f"beat classifier classified {classified} new or changed strips and kept the "
+                f"patterns of {n - classified} unchanged ones ({n} beat_pattern rows)")
     return f"beat classifier wrote {n} beat_pattern rows"
 
 

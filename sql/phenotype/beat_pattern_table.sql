@@ -1,6 +1,7 @@
 -- beat_pattern: the beat-level AV conduction pattern of every strip in wave_event.
--- Grain: one row per ecg_key. Written by cohort/phenotype/beats_batch.py (rebuilt on each run);
--- the phenotype stage joins it into the per-ECG categories as evidence "beat pattern".
+-- Grain: one row per ecg_key. Written by cohort/phenotype/beats_batch.py (recreated on each
+-- write, keeping the rows of unchanged strips); the phenotype stage joins it into the per-ECG
+-- categories as evidence "beat pattern".
 -- pattern is a key of cohort.vocabulary.BEAT_PATTERNS; rates in bpm, PR in ms; evidence holds
 -- machine-readable reasons followed by one human sentence; rules_id names the rule file.
 CREATE OR REPLACE TABLE beat_pattern (

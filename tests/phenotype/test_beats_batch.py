@@ -39,6 +39,11 @@ EXPECTED_COLUMNS = [
 def _registry(strips: dict[str, tuple[list, list]]):
     con = duckdb.connect()
     ensure_schema(con)
+    _add_events(con, strips)
+    return con
+
+
+def _add_events(con, strips: dict[str, tuple[list, list]]) -> None:
     keys, ts, kinds = [], [], []
     for key, (p, q) in strips.items():
         keys += [key] * (len(p) + len(q))
@@ -47,7 +52,6 @@ def _registry(strips: dict[str, tuple[list, list]]):
     con.register("_events", pa.table({"ecg_key": keys, "t_ms": np.asarray(ts, float), "kind": kinds}))
     con.execute("INSERT INTO wave_event SELECT ecg_key, t_ms, kind, 'test' FROM _events")
     con.unregister("_events")
-    return con
 
 
 def _row(res, key: str) -> tuple:
@@ -185,24 +189,89 @@ def test_patterns_are_reused_only_while_waves_rules_and_classifier_are_unchanged
     """A second phenotype run (another rule set) must not classify every strip again, and any
     change to what the patterns were computed from must (common practice, no source)."""
     con = _registry(strips)
-    assert refresh_registry(con) == (len(strips), False)
+    assert refresh_registry(con) == (len(strips), len(strips))
     before = con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall()
-    assert refresh_registry(con) == (len(strips), True)
+    assert refresh_registry(con) == (len(strips), 0)
     assert con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall() == before
-    # one event fewer: the fingerprint changes and every strip is classified again
+    # one event fewer: that strip alone is classified again
     con.execute("DELETE FROM wave_event WHERE rowid = (SELECT min(rowid) FROM wave_event)")
-    assert refresh_registry(con) == (len(strips), False)
-    assert refresh_registry(con)[1]
-    # same rule id, other threshold: recomputed
+    assert refresh_registry(con) == (len(strips), 1)
+    assert refresh_registry(con) == (len(strips), 0)
+    # same rule id, other threshold: every strip recomputed
     text = DEFAULT_RULES_PATH.read_text(encoding="utf-8")
     changed = re.sub(r"(?m)^p_duplicate_ms = 40.0", "p_duplicate_ms = 45.0", text)
     assert changed != text
     path = tmp_path / "beats-v1.toml"
     path.write_text(changed, encoding="utf-8")
-    assert refresh_registry(con, rules=path) == (len(strips), False)
-    # a classifier change (its source fingerprint) invalidates too
+    assert refresh_registry(con, rules=path) == (len(strips), len(strips))
+    # a classifier change (its source fingerprint) invalidates every strip too, even when wave
+    # events changed as well
     con.execute("UPDATE beat_run SET classifier_fingerprint = 'older'")
-    assert refresh_registry(con, rules=path)[1] is False
+    assert refresh_registry(con, rules=path) == (len(strips), len(strips))
+    con.execute("UPDATE beat_run SET classifier_fingerprint = 'older'")
+    con.execute("DELETE FROM wave_event WHERE rowid = (SELECT max(rowid) FROM wave_event)")
+    assert refresh_registry(con, rules=path) == (len(strips), len(strips))
+
+
+def _stored(con) -> list[tuple]:
+    return con.execute("SELECT * FROM beat_pattern ORDER BY ecg_key").fetchall()
+
+
+def test_new_and_changed_strips_alone_are_classified_and_rows_equal_a_full_run(strips):
+    """After a new load only new strips and strips whose events changed are classified; the
+    table equals a full classification (common practice, no source)."""
+    keys = sorted(strips)
+    first = {k: strips[k] for k in keys[: len(keys) // 2]}
+    con = _registry(first)
+    assert refresh_registry(con) == (len(first), len(first))
+    # a new load: the other strips' events, one strip of the first load changed, one removed
+    changed, removed = keys[0], keys[1]
+    con.execute("DELETE FROM wave_event WHERE ecg_key IN (?, ?)", [changed, removed])
+    p, q = strips[keys[-1]]  # the changed strip now holds another strip's events
+    later = {k: strips[k] for k in keys[len(keys) // 2:]}
+    later[changed] = (p, q)
+    _add_events(con, later)
+    n_now = len(keys) - 1
+    assert refresh_registry(con) == (n_now, len(later))
+    incremental = _stored(con)
+    assert [row[0] for row in incremental] == sorted(set(keys) - {removed})
+    assert con.execute("SELECT count(*) FROM beat_strip").fetchone()[0] == n_now
+    classify_registry(con)
+    assert _stored(con) == incremental
+    assert refresh_registry(con) == (n_now, 0)
+    # removing strips alone classifies nothing and drops their rows
+    con.execute("DELETE FROM wave_event WHERE ecg_key = ?", [keys[-1]])
+    assert refresh_registry(con) == (n_now - 1, 0)
+    assert [row[0] for row in _stored(con)] == sorted(set(keys) - {removed, keys[-1]})
+
+
+def test_a_registry_without_strip_digests_is_classified_in_full(strips):
+    # beat_pattern written before beat_strip existed: no digests to compare, so everything
+    con = _registry(strips)
+    refresh_registry(con)
+    con.execute("DROP TABLE beat_strip")
+    con.execute("DELETE FROM wave_event WHERE rowid = (SELECT min(rowid) FROM wave_event)")
+    assert refresh_registry(con) == (len(strips), len(strips))
+    assert con.execute("SELECT count(*) FROM beat_strip").fetchone()[0] == len(strips)
+
+
+def test_a_failed_incremental_write_leaves_the_stored_patterns(strips, monkeypatch):
+    import cohort.phenotype.beats_batch as batch
+
+    con = _registry(strips)
+    refresh_registry(con)
+    before = _stored(con)
+    digests = con.execute("SELECT * FROM beat_strip ORDER BY ecg_key").fetchall()
+    con.execute("DELETE FROM wave_event WHERE rowid = (SELECT min(rowid) FROM wave_event)")
+
+    def fail(*args, **kwargs):
+        raise RuntimeError("disk full")
+
+    monkeypatch.setattr(batch, "_run_row", fail)
+    with pytest.raises(RuntimeError, match="disk full"):
+        refresh_registry(con)
+    assert _stored(con) == before
+    assert con.execute("SELECT * FROM beat_strip ORDER BY ecg_key").fetchall() == digests
 
 
 def test_a_second_phenotype_run_reuses_the_beat_patterns(strips):
