@@ -287,6 +287,18 @@ def test_a_second_phenotype_run_reuses_the_beat_patterns(strips):
     assert any("wrote" in note for note in forced["notes"])
 
 
+def test_the_phenotype_run_says_how_many_strips_it_classified_after_a_new_load(strips):
+    from cohort.phenotype import run_phenotype
+
+    keys = sorted(strips)
+    con = _registry({k: strips[k] for k in keys[:-2]})
+    run_phenotype(con, "default-v1")
+    _add_events(con, {k: strips[k] for k in keys[-2:]})
+    notes = run_phenotype(con, "default-v1")["notes"]
+    assert any(f"classified 2 new or changed strips and kept the patterns of {len(keys) - 2}"
+               in note for note in notes)
+
+
 def test_vectorized_paths_settle_only_strips_of_the_shape_they_take(strips):
     # classify_strips sends the strips may_settle rejects to the per-strip classifier before
     # the vectorized passes run: those passes must never settle one of them
