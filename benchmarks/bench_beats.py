@@ -14,7 +14,8 @@ prints the median. Two pattern mixes:
 
 Each mix is timed with 1 and 2 worker processes for the per-strip path (``--workers``); the
 vectorized paths (``cohort/phenotype/beats_vector.py``) and the SQL always run in the main
-process.
+process. ``--new-share`` also times ``refresh_registry`` after a load that adds that share of
+the strips (only those are classified), beside a full classification in the same run.
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ import numpy as np
 import pyarrow as pa
 
 from cohort.phenotype.beats import load_rules
-from cohort.phenotype.beats_batch import _read_strips, classify_registry
+from cohort.phenotype.beats_batch import _read_strips, classify_registry, refresh_registry
 from cohort.phenotype.beats_vector import vectorized_rows
 from cohort.registry import ensure_schema
 from synthetic_registry.strips import PATTERNS, simulate_strip
@@ -77,6 +78,23 @@ def time_runs(con, runs: int, workers: int) -> list[float]:
     return out
 
 
+def time_new_load(con, share: float, runs: int, workers: int) -> list[float]:
+    """Seconds of refresh_registry after the events of ``share`` of the strips are loaded anew
+    (held back, patterns of the rest brought up to date, then the events added again)."""
+    held = f"hash(ecg_key) % 1000 < {round(share * 1000)}"
+    con.execute(f"CREATE OR REPLACE TEMP TABLE bench_held AS SELECT * FROM wave_event WHERE {held}")
+    out = []
+    for _ in range(runs):
+        con.execute(f"DELETE FROM wave_event WHERE {held}")
+        refresh_registry(con, workers=workers)
+        con.execute("INSERT INTO wave_event SELECT * FROM bench_held")
+        start = time.perf_counter()
+        refresh_registry(con, workers=workers)
+        out.append(time.perf_counter() - start)
+    con.execute("DROP TABLE bench_held")
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--strips", type=int, default=100_000)
@@ -85,6 +103,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--mix", choices=("registry", "uniform", "both"), default="both")
     parser.add_argument("--workers", type=int, nargs="+", default=[1, 2],
                         help="worker processes for the per-strip path (each value is timed)")
+    parser.add_argument("--new-share", type=float, default=None,
+                        help="also time a refresh after a load adding this share of the strips")
     args = parser.parse_args(argv)
     mixes = ("registry", "uniform") if args.mix == "both" else (args.mix,)
     for mix in mixes:
@@ -103,6 +123,10 @@ def main(argv: list[str] | None = None) -> int:
             rate = args.strips / med
             print(f"  workers={workers}: runs {', '.join(f'{s:.2f}' for s in seconds)} s; median "
                   f"{med:.2f} s = {rate:,.0f} strips/s ({rate / TARGET:.2f} x target {TARGET:,.0f})")
+            if args.new_share:
+                new = statistics.median(time_new_load(con, args.new_share, args.runs, workers))
+                print(f"    after a load adding {args.new_share:.0%} of the strips: median "
+                      f"{new:.2f} s ({new / med:.2f} x the full classification)")
         con.close()
     return 0
 
