@@ -264,8 +264,8 @@ def _run_beats(con, enabled: bool, rebuild: bool = False) -> str:
         return (f"beat patterns of {n} strips reused: no new or changed strips, beat rules "
                 "and classifier unchanged since they were computed")
     if classified < n:
-        return (f"beat classifier classified {classified} new or changed strips and kept the "
-                f"patterns of {n - classified} unchanged ones ({n} beat_pattern rows)")
+        return (f"beat classifier: {classified} new or changed strips classified, patterns of "
+                f"{n - classified} unchanged strips kept ({n} beat_pattern rows)")
     return f"beat classifier wrote {n} beat_pattern rows"
 
 

@@ -295,7 +295,7 @@ def test_the_phenotype_run_says_how_many_strips_it_classified_after_a_new_load(s
     run_phenotype(con, "default-v1")
     _add_events(con, {k: strips[k] for k in keys[-2:]})
     notes = run_phenotype(con, "default-v1")["notes"]
-    assert any(f"classified 2 new or changed strips and kept the patterns of {len(keys) - 2}"
+    assert any(f"2 new or changed strips classified, patterns of {len(keys) - 2} unchanged"
                in note for note in notes)
 
 
